@@ -1,0 +1,112 @@
+"""The run's history: one record per window, written by the monitor.
+
+A record is a flat dict of numbers and small arrays (for example ``"step"``,
+``"mean_logp"``, ``"centre"`` of shape ``(d,)``) plus, for events, strings. :class:`History`
+keeps them in order and converts them to plain arrays or a text table.
+"""
+from __future__ import annotations
+
+from typing import Any, Iterator
+
+import numpy as np
+
+__all__ = ["History"]
+
+
+def _jsonable(value):
+    if isinstance(value, (np.ndarray, np.generic)):
+        return value.tolist()
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, float) and not np.isfinite(value):
+        return repr(value)
+    return value
+
+
+class History:
+    """Ordered monitor records, one per window (plus event records such as a roll-back)."""
+
+    def __init__(self, records: list[dict[str, Any]] | None = None):
+        self.records: list[dict[str, Any]] = list(records or [])
+
+    def append(self, record: dict[str, Any]) -> None:
+        self.records.append(dict(record))
+
+    def __len__(self) -> int:
+        return len(self.records)
+
+    def __iter__(self) -> Iterator[dict[str, Any]]:
+        return iter(self.records)
+
+    def __getitem__(self, i):
+        return self.records[i]
+
+    @property
+    def last(self) -> dict[str, Any] | None:
+        return self.records[-1] if self.records else None
+
+    def keys(self) -> list[str]:
+        seen: dict[str, None] = {}
+        for r in self.records:
+            for k in r:
+                seen.setdefault(k, None)
+        return list(seen)
+
+    def column(self, name: str) -> np.ndarray:
+        """Values of one figure over the windows; NaN where a record lacks it.
+
+        Array-valued figures (e.g. ``centre``) come back stacked, shape ``(windows, d)``.
+        """
+        vals = [r.get(name) for r in self.records]
+        present = [v for v in vals if v is not None and not isinstance(v, str)]
+        if not present:
+            if any(isinstance(v, str) for v in vals):
+                return np.array(["" if v is None else v for v in vals])
+            raise KeyError(f"name: '{name}' is not a figure of this history; figures are {self.keys()}")
+        shape = np.shape(present[0])
+        filler = np.full(shape, np.nan)
+        return np.stack([np.asarray(v, dtype=float) if v is not None and not isinstance(v, str) else filler
+                         for v in vals])
+
+    def as_arrays(self) -> dict[str, np.ndarray]:
+        """Every figure as an array over the windows (strings as an array of str)."""
+        return {k: self.column(k) for k in self.keys()}
+
+    def table(self, names: list[str] | None = None, width: int = 11) -> str:
+        """A plain-text table of the scalar figures, one row per window."""
+        if names is None:
+            names = [k for k in self.keys()
+                     if all(np.ndim(r.get(k, 0.0)) == 0 and not isinstance(r.get(k, 0.0), str)
+                            for r in self.records)]
+        head = " ".join(f"{n[:width]:>{width}}" for n in names)
+        lines = [head, "-" * len(head)]
+        for r in self.records:
+            cells = []
+            for n in names:
+                v = r.get(n)
+                if v is None:
+                    cells.append(f"{'':>{width}}")
+                elif isinstance(v, (int, np.integer)) or (isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")):
+                    cells.append(f"{int(v):>{width}d}")
+                else:
+                    cells.append(f"{float(v):>{width}.4g}")
+            lines.append(" ".join(cells))
+        return "\n".join(lines)
+
+    def to_json(self) -> list[dict[str, Any]]:
+        return [{k: _jsonable(v) for k, v in r.items()} for r in self.records]
+
+    @classmethod
+    def from_json(cls, items: list[dict[str, Any]]) -> "History":
+        recs = []
+        for r in items:
+            rec = {}
+            for k, v in r.items():
+                if isinstance(v, list):
+                    rec[k] = np.asarray(v, dtype=float)
+                elif isinstance(v, str) and v in ("nan", "inf", "-inf"):
+                    rec[k] = float(v)
+                else:
+                    rec[k] = v
+            recs.append(rec)
+        return cls(recs)

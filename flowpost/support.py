@@ -1,0 +1,162 @@
+"""Supports of parameters and the bijections that map them onto the real line.
+
+Particles always live in an unconstrained space ``R^d``; each constrained parameter is
+reached through a smooth bijection ``x = T(u)``. By the change-of-variables formula the
+density of ``u`` is
+
+    log p_U(u) = log p_X(T(u)) + log |det dT/du|,
+
+so every support below supplies ``forward`` (``u -> x``), ``inverse`` (``x -> u``) and the
+log-Jacobian ``log |det dT/du|``, which :class:`flowpost.Target` adds to the user's
+log-density automatically.
+
+Supports are frozen, hashable dataclasses so that a :class:`~flowpost.Target` built from
+them can be a static part of a compiled function.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import jax
+import jax.numpy as jnp
+
+__all__ = ["Real", "Positive", "Interval", "Simplex", "as_support"]
+
+
+@dataclass(frozen=True)
+class Real:
+    """No constraint: ``x = u``, log-Jacobian 0."""
+
+    def free_size(self, shape: tuple[int, ...]) -> int:
+        """Number of unconstrained coordinates for a parameter of ``shape``."""
+        size = 1
+        for s in shape:
+            size *= s
+        return size
+
+    def forward(self, u: jax.Array, shape: tuple[int, ...]) -> jax.Array:
+        return u.reshape(shape)
+
+    def inverse(self, x: jax.Array) -> jax.Array:
+        return x.reshape(-1)
+
+    def log_jacobian(self, u: jax.Array) -> jax.Array:
+        return jnp.zeros((), u.dtype)
+
+    def contains(self, x: jax.Array) -> jax.Array:
+        return jnp.isfinite(x)
+
+    def describe(self) -> str:
+        return "real"
+
+
+@dataclass(frozen=True)
+class Positive(Real):
+    """Positive parameter: ``x = exp(u)``, ``log |dx/du| = u`` summed over elements."""
+
+    def forward(self, u, shape):
+        return jnp.exp(u).reshape(shape)
+
+    def inverse(self, x):
+        return jnp.log(x).reshape(-1)
+
+    def log_jacobian(self, u):
+        return jnp.sum(u)
+
+    def contains(self, x):
+        return jnp.isfinite(x) & (x > 0)
+
+    def describe(self):
+        return "positive"
+
+
+@dataclass(frozen=True)
+class Interval(Real):
+    """Parameter in the open interval ``(low, high)``.
+
+    ``x = low + (high - low) * sigmoid(u)``, so
+    ``log |dx/du| = log(high - low) + log sigmoid(u) + log sigmoid(-u)``.
+    """
+
+    low: float = 0.0
+    high: float = 1.0
+
+    def __post_init__(self):
+        if not float(self.high) > float(self.low):
+            raise ValueError(
+                f"Interval: 'high' must exceed 'low'; got low={self.low}, high={self.high}"
+            )
+
+    def forward(self, u, shape):
+        return (self.low + (self.high - self.low) * jax.nn.sigmoid(u)).reshape(shape)
+
+    def inverse(self, x):
+        z = (x - self.low) / (self.high - self.low)
+        return (jnp.log(z) - jnp.log1p(-z)).reshape(-1)
+
+    def log_jacobian(self, u):
+        width = jnp.asarray(self.high - self.low, u.dtype)
+        return jnp.sum(jnp.log(width) + jax.nn.log_sigmoid(u) + jax.nn.log_sigmoid(-u))
+
+    def contains(self, x):
+        return jnp.isfinite(x) & (x > self.low) & (x < self.high)
+
+    def describe(self):
+        return f"interval({self.low:g}, {self.high:g})"
+
+
+@dataclass(frozen=True)
+class Simplex(Real):
+    """Probability vector of length K on the last axis (entries > 0, summing to 1).
+
+    Additive log-ratio map from ``K - 1`` free coordinates:
+    ``x = softmax([u_1, ..., u_{K-1}, 0])``. Its Jacobian with respect to the first
+    ``K - 1`` entries of ``x`` has determinant ``prod_{k=1}^{K} x_k``, so
+    ``log |det| = sum_k log x_k``. Only one-dimensional simplex parameters (shape ``(K,)``)
+    are supported.
+    """
+
+    def free_size(self, shape):
+        if len(shape) != 1 or shape[0] < 2:
+            raise ValueError(
+                f"Simplex: a simplex parameter must have shape (K,) with K >= 2; got {shape}"
+            )
+        return shape[0] - 1
+
+    def forward(self, u, shape):
+        full = jnp.concatenate([u, jnp.zeros((1,), u.dtype)])
+        return jax.nn.softmax(full).reshape(shape)
+
+    def inverse(self, x):
+        logs = jnp.log(x)
+        return logs[:-1] - logs[-1]
+
+    def log_jacobian(self, u):
+        full = jnp.concatenate([u, jnp.zeros((1,), u.dtype)])
+        return jnp.sum(jax.nn.log_softmax(full))
+
+    def contains(self, x):
+        ok = jnp.isfinite(x) & (x > 0)
+        total_ok = jnp.abs(jnp.sum(x) - 1.0) < 1e-4
+        return ok & total_ok
+
+    def describe(self):
+        return "simplex"
+
+
+_BY_NAME = {"real": Real(), "positive": Positive(), "simplex": Simplex(), "unit": Interval(0.0, 1.0)}
+
+
+def as_support(spec) -> Real:
+    """Turn a support given as an object or a name ('real', 'positive', 'simplex', 'unit')
+    or a ``(low, high)`` pair into a support object."""
+    if isinstance(spec, Real):
+        return spec
+    if isinstance(spec, str) and spec in _BY_NAME:
+        return _BY_NAME[spec]
+    if isinstance(spec, tuple) and len(spec) == 2:
+        return Interval(float(spec[0]), float(spec[1]))
+    raise ValueError(
+        f"support: expected flowpost.Positive(), Interval(low, high), Simplex(), Real(), "
+        f"one of {sorted(_BY_NAME)} or a (low, high) pair; got {spec!r}"
+    )

@@ -1,0 +1,380 @@
+"""The target: a user's log-density over a pytree, seen by steppers as a function on ``R^d``.
+
+A user writes ``log_p(theta)`` or ``log_p(theta, data)`` where ``theta`` is a pytree (a
+dict of scalars and arrays, or one array) and the result is a scalar, the log posterior
+density up to an unknown constant. :class:`Target` flattens one particle's pytree into a
+vector, maps constrained parameters to the real line (see :mod:`flowpost.support`) and adds
+the log-Jacobian, so that steppers only ever see
+
+    log pi(u) = log_p(T(u)) + log |det dT/du|,     u in R^d,
+
+and its score ``grad_u log pi(u)`` (by autodiff), vmapped over an ``(N, d)`` ensemble.
+
+A ``Target`` is a registered JAX pytree: the data are its leaves (so new data do not cause a
+recompilation and a run can be ``vmap``-ped over datasets) while the log-density, the
+supports and the parameter layout are static.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable, Mapping
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .support import Real, as_support
+
+__all__ = ["Target", "Layout", "as_target"]
+
+
+def _path_name(path) -> str:
+    parts = []
+    for p in path:
+        if isinstance(p, jax.tree_util.DictKey):
+            parts.append(str(p.key))
+        elif isinstance(p, jax.tree_util.SequenceKey):
+            parts.append(str(p.idx))
+        elif isinstance(p, jax.tree_util.GetAttrKey):
+            parts.append(str(p.name))
+        else:  # pragma: no cover - other key kinds
+            parts.append(str(p))
+    return ".".join(parts) if parts else "x"
+
+
+@dataclass(frozen=True)
+class _Slot:
+    name: str
+    shape: tuple[int, ...]
+    support: Real
+    start: int
+    size: int
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Static description of one particle: parameter names, shapes, supports and where each
+    one's unconstrained coordinates sit in the flat vector."""
+
+    treedef: Any
+    slots: tuple[_Slot, ...]
+    dim: int
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self.slots)
+
+    def element_names(self) -> list[str]:
+        """One label per constrained scalar, e.g. ``sigma``, ``w[0]``, ``m[1,2]``."""
+        out = []
+        for s in self.slots:
+            if s.shape == ():
+                out.append(s.name)
+            else:
+                for idx in np.ndindex(*s.shape):
+                    out.append(f"{s.name}[{','.join(map(str, idx))}]")
+        return out
+
+    def coordinate_names(self) -> list[str]:
+        """One label per unconstrained coordinate (simplex parameters lose one entry)."""
+        out = []
+        for s in self.slots:
+            if s.size == 1 and s.shape == ():
+                out.append(s.name)
+            else:
+                out.extend(f"{s.name}[{i}]" for i in range(s.size))
+        return out
+
+    def unflatten(self, u: jax.Array):
+        """Unconstrained vector ``(d,)`` -> (constrained pytree, log-Jacobian)."""
+        leaves, logj = [], jnp.zeros((), u.dtype)
+        for s in self.slots:
+            piece = u[s.start : s.start + s.size]
+            leaves.append(s.support.forward(piece, s.shape))
+            logj = logj + s.support.log_jacobian(piece)
+        return jax.tree_util.tree_unflatten(self.treedef, leaves), logj
+
+    def flatten(self, theta) -> jax.Array:
+        """Constrained pytree (one particle) -> unconstrained vector ``(d,)``."""
+        leaves = self.treedef.flatten_up_to(theta)
+        parts = [s.support.inverse(jnp.asarray(leaf)) for s, leaf in zip(self.slots, leaves)]
+        return jnp.concatenate([jnp.atleast_1d(p) for p in parts])
+
+
+def _build_layout(init, support) -> tuple[Layout, int]:
+    leaves_with_path, treedef = jax.tree_util.tree_flatten_with_path(init)
+    if not leaves_with_path:
+        raise ValueError("init: expected a pytree of arrays with a leading particle axis; got no arrays")
+    n = None
+    slots, start = [], 0
+    names = []
+    for path, leaf in leaves_with_path:
+        name = _path_name(path)
+        arr = np.asarray(leaf) if not isinstance(leaf, jax.Array) else leaf
+        if arr.ndim < 1:
+            raise ValueError(
+                f"init: parameter '{name}' has no leading particle axis (shape {tuple(arr.shape)}); "
+                "every leaf of init must have shape (N, ...)"
+            )
+        if n is None:
+            n = arr.shape[0]
+        elif arr.shape[0] != n:
+            raise ValueError(
+                f"init: every leaf must share the leading particle axis N; '{names[0]}' has N={n} "
+                f"but '{name}' has {arr.shape[0]}"
+            )
+        names.append(name)
+        shape = tuple(int(s) for s in arr.shape[1:])
+        sup = support.get(name, Real())
+        size = sup.free_size(shape)
+        slots.append(_Slot(name, shape, sup, start, size))
+        start += size
+    unknown = set(support) - set(names)
+    if unknown:
+        raise ValueError(
+            f"support: {sorted(unknown)} not among the parameters of init ({names})"
+        )
+    return Layout(treedef, tuple(slots), start), n
+
+
+class Target:
+    """A log-density over a pytree of parameters, ready for particle steppers.
+
+    Parameters
+    ----------
+    log_p : callable or mapping of callables
+        ``log_p(theta)`` or, when ``data`` is given, ``log_p(theta, data)``, returning a scalar:
+        the log posterior density up to a constant. A mapping ``{name: callable}`` declares the
+        log-density as a sum of named terms (e.g. ``{"likelihood": f, "prior": g}``), which
+        splitting steppers can treat separately.
+    data : pytree, optional
+        Passed as the second argument of ``log_p``. Its arrays are traced, not baked into the
+        compiled code.
+    support : mapping or support, optional
+        Constraints per parameter name (``{"sigma": fp.Positive(), "p": fp.Simplex(),
+        "rho": fp.Interval(-1, 1)}``); nested dicts use dotted names ("a.b"). For a plain array
+        parameter pass one support object. Unnamed parameters are unconstrained.
+
+    Notes
+    -----
+    Inside, a particle is a vector ``u`` in ``R^d`` and the log-density is
+    ``log_p(T(u)) + log|det dT/du|``; everything a user sees (result particles, summaries) is
+    mapped back through ``T``. When the support makes ``T`` non-trivial and terms are named,
+    the log-Jacobian appears as its own term named ``"jacobian"``.
+    """
+
+    def __init__(
+        self,
+        log_p: Callable[..., Any] | Mapping[str, Callable[..., Any]],
+        data: Any = None,
+        support: Any = None,
+        *,
+        _layout: Layout | None = None,
+    ):
+        if isinstance(log_p, Mapping):
+            if not log_p:
+                raise ValueError("log_p: a mapping of named terms must not be empty")
+            for k, f in log_p.items():
+                if not callable(f):
+                    raise TypeError(f"log_p: term '{k}' must be callable; got {type(f).__name__}")
+            self._terms = tuple(log_p.items())
+        elif callable(log_p):
+            self._terms = (("total", log_p),)
+        else:
+            raise TypeError(f"log_p: expected a callable or a mapping of callables; got {type(log_p).__name__}")
+        self._named = isinstance(log_p, Mapping)
+        self.data = data
+        if support is None:
+            sup = {}
+        elif isinstance(support, Mapping):
+            sup = {str(k): as_support(v) for k, v in support.items()}
+        else:
+            sup = {"x": as_support(support)}
+        self._support = tuple(sorted(sup.items()))
+        self.layout = _layout
+
+    # ----- pytree protocol ------------------------------------------------------------
+    def _aux(self):
+        return (self._terms, self._named, self._support, self.layout)
+
+    def tree_flatten(self):
+        return (self.data,), self._aux()
+
+    @classmethod
+    def tree_unflatten(cls, aux, children):
+        obj = cls.__new__(cls)
+        obj._terms, obj._named, obj._support, obj.layout = aux
+        obj.data = children[0]
+        return obj
+
+    def _replace_layout(self, layout: Layout) -> "Target":
+        obj = Target.__new__(Target)
+        obj._terms, obj._named, obj._support = self._terms, self._named, self._support
+        obj.data, obj.layout = self.data, layout
+        return obj
+
+    def __repr__(self):
+        names = self.layout.names if self.layout is not None else "unbound"
+        return f"Target(terms={[k for k, _ in self._terms]}, parameters={names})"
+
+    # ----- binding to a particle structure ------------------------------------------------
+    @property
+    def support(self) -> dict:
+        return dict(self._support)
+
+    def bind(self, init) -> tuple["Target", jax.Array]:
+        """Fix the parameter layout from ``init`` (pytree with leading axis N) and return the
+        bound target and the unconstrained ``(N, d)`` starting ensemble.
+
+        Raises clear errors when ``init`` is malformed, outside the support, or does not
+        match what ``log_p`` reads; when ``log_p`` does not return a scalar; or when it
+        cannot be differentiated.
+        """
+        layout, n = _build_layout(init, dict(self._support))
+        bound = self._replace_layout(layout)
+        leaves = layout.treedef.flatten_up_to(init)
+        dtypes = [jnp.asarray(l).dtype for l in leaves]
+        dtype = jnp.result_type(*[d if jnp.issubdtype(d, jnp.floating) else jnp.float32 for d in dtypes])
+        for s, leaf in zip(layout.slots, leaves):
+            inside = np.asarray(jax.vmap(s.support.contains)(jnp.asarray(leaf, dtype)))
+            bad = ~inside.reshape(n, -1).all(axis=1)
+            if bad.any():
+                raise ValueError(
+                    f"init: {int(bad.sum())} of {n} particles have '{s.name}' outside its support "
+                    f"({s.support.describe()}) or non-finite"
+                )
+        cast = jax.tree_util.tree_unflatten(layout.treedef, [jnp.asarray(l, dtype) for l in leaves])
+        x = jax.vmap(layout.flatten)(cast)
+        bound._check_log_p(x[0])
+        return bound, x
+
+    def _check_log_p(self, u0: jax.Array) -> None:
+        layout = self.layout
+        shapes = {s.name: s.shape for s in layout.slots}
+        for name, f in self._terms:
+            label = "log_p" if not self._named else f"log_p['{name}']"
+
+            def one(u, f=f):
+                theta, _ = layout.unflatten(u)
+                return self._call(f, theta)
+
+            try:
+                out = jax.eval_shape(one, u0)
+            except Exception as err:  # user code failed on a particle of the init structure
+                raise ValueError(
+                    f"init does not match what {label} reads: calling it on one particle with "
+                    f"parameters {shapes} raised {type(err).__name__}: {err}"
+                ) from err
+            if getattr(out, "shape", None) != ():
+                raise ValueError(
+                    f"{label} must return a scalar log-density; it returned shape "
+                    f"{getattr(out, 'shape', type(out).__name__)}"
+                )
+            if not jnp.issubdtype(out.dtype, jnp.floating):
+                raise TypeError(
+                    f"{label} must return a floating-point scalar; it returned dtype {out.dtype}"
+                )
+            try:
+                jax.eval_shape(jax.grad(one), u0)
+            except Exception as err:
+                raise TypeError(
+                    f"{label} cannot be differentiated by JAX (write it with jax.numpy, without "
+                    f"numpy conversions or Python control flow on values): {type(err).__name__}: {err}"
+                ) from err
+
+    # ----- log-density on one particle ------------------------------------------------------
+    def _call(self, f, theta):
+        return f(theta) if self.data is None else f(theta, self.data)
+
+    def _require_layout(self):
+        if self.layout is None:
+            raise ValueError("target: this Target is not bound to a parameter layout; call target.bind(init)")
+
+    @property
+    def dim(self) -> int:
+        """Number of unconstrained coordinates ``d``."""
+        self._require_layout()
+        return self.layout.dim
+
+    @property
+    def term_names(self) -> tuple[str, ...]:
+        """Names of the log-density's terms (``("total",)`` for a single callable), plus
+        ``"jacobian"`` when terms are named and some parameter is constrained."""
+        names = tuple(k for k, _ in self._terms)
+        if self._named and self._constrained():
+            names = names + ("jacobian",)
+        return names
+
+    def _constrained(self) -> bool:
+        self._require_layout()
+        return any(type(s.support) is not Real for s in self.layout.slots)
+
+    def log_density_one(self, u: jax.Array) -> jax.Array:
+        """``log_p(T(u)) + log|det dT/du|`` for one particle ``u`` of shape ``(d,)``."""
+        self._require_layout()
+        theta, logj = self.layout.unflatten(u)
+        total = logj
+        for _, f in self._terms:
+            total = total + self._call(f, theta)
+        return total
+
+    def term_one(self, name: str, u: jax.Array) -> jax.Array:
+        """One named term at one particle (``"jacobian"`` gives the log-Jacobian)."""
+        self._require_layout()
+        theta, logj = self.layout.unflatten(u)
+        if name == "jacobian":
+            return logj
+        for k, f in self._terms:
+            if k == name:
+                out = self._call(f, theta)
+                if not self._named:
+                    out = out + logj
+                return out
+        raise ValueError(f"term: '{name}' is not a term of this target; terms are {self.term_names}")
+
+    # ----- vectorised over an (N, d) ensemble ------------------------------------------------
+    def log_density(self, x: jax.Array) -> jax.Array:
+        """Log-density at every particle: ``(N, d) -> (N,)``."""
+        return jax.vmap(self.log_density_one)(x)
+
+    def score(self, x: jax.Array) -> jax.Array:
+        """Score ``grad_u log pi(u)`` at every particle: ``(N, d) -> (N, d)``."""
+        return jax.vmap(jax.grad(self.log_density_one))(x)
+
+    def value_and_score(self, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+        """Log-density and score together (one autodiff pass): ``(N,), (N, d)``."""
+        return jax.vmap(jax.value_and_grad(self.log_density_one))(x)
+
+    def term_value_and_score(self, name: str, x: jax.Array) -> tuple[jax.Array, jax.Array]:
+        """A named term's value and gradient at every particle."""
+        return jax.vmap(jax.value_and_grad(lambda u: self.term_one(name, u)))(x)
+
+    # ----- user-space views -------------------------------------------------------------------
+    def constrain(self, x: jax.Array):
+        """Unconstrained ``(N, d)`` ensemble -> the user's pytree with leading axis N."""
+        self._require_layout()
+        return jax.vmap(lambda u: self.layout.unflatten(u)[0])(x)
+
+    def unconstrain(self, theta) -> jax.Array:
+        """The user's pytree with leading axis N -> unconstrained ``(N, d)``."""
+        self._require_layout()
+        return jax.vmap(self.layout.flatten)(theta)
+
+    def constrained_matrix(self, x: jax.Array) -> jax.Array:
+        """Constrained values as an ``(N, k)`` matrix, one column per element name."""
+        tree = self.constrain(x)
+        leaves = self.layout.treedef.flatten_up_to(tree)
+        n = x.shape[0]
+        return jnp.concatenate([jnp.reshape(l, (n, -1)) for l in leaves], axis=1)
+
+
+jax.tree_util.register_pytree_node(Target, Target.tree_flatten, Target.tree_unflatten)
+
+
+def as_target(obj) -> Target:
+    """Accept a :class:`Target` or a bare log-density callable."""
+    if isinstance(obj, Target):
+        return obj
+    if callable(obj) or isinstance(obj, Mapping):
+        return Target(obj)
+    raise TypeError(f"target: expected a flowpost.Target or a log-density callable; got {type(obj).__name__}")
