@@ -92,7 +92,7 @@ class Monitor:
     ----------
     growth_limit : float
         A window whose ensemble spread exceeds ``growth_limit`` times the largest spread seen
-        in the first window (in any coordinate) counts as an explosive blow-up and triggers a
+        at the start or after the first window (in any coordinate) counts as an explosive blow-up and triggers a
         roll-back, like non-finite particles.
     """
 
@@ -101,14 +101,16 @@ class Monitor:
     def __init__(self, growth_limit: float = 1e6):
         self.growth_limit = float(growth_limit)
         self._prev = None
-        self._first_spread = None
+        self._first_spread = 0.0
+        self._scale_set = False
 
     def open(self, target, stepper, state) -> None:
-        self._prev = None
-        self._first_spread = None
         fig = jax.device_get(_ensemble_figures(target, state.x))
         self._prev = (0, fig["centre"], fig["spread"])
-        self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 1.0
+        # the scale for "explosive growth": the larger of the starting spread and the spread
+        # after the first window (a start with near-zero spread has no scale of its own)
+        self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 0.0
+        self._scale_set = False
 
     def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
         fig = jax.device_get(_ensemble_figures(target, state.x))
@@ -128,6 +130,9 @@ class Monitor:
                 rec["spread_drift"] = float(np.max(ratio)) / dt if ratio.size else float("nan")
         if rec["n_nonfinite"] == 0:
             self._prev = (step, rec["centre"], rec["spread"])
+            if not self._scale_set and np.all(np.isfinite(rec["spread"])):
+                self._first_spread = max(self._first_spread, float(np.max(rec["spread"], initial=0.0)))
+                self._scale_set = True
         rec.update(summarise_stats(stats))
         return rec
 
