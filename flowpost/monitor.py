@@ -19,25 +19,47 @@ Interface (what :func:`flowpost.run` calls; a user's own monitor implements the 
 ``headline(record) -> dict``
     A few short figures for the progress bar.
 
-The default :class:`Monitor` records, per window, in the unconstrained coordinates the flow
-moves: the mean log-density, the ensemble mean (``centre``) and standard deviation
-(``spread``) per coordinate, their drift per unit of flow time,
+The default :class:`Monitor` reads only the particles, the scores and the stepper's own
+stats, so the same monitor watches every stepper. Per window it records, in the
+unconstrained coordinates the flow moves:
 
-    centre_drift = max_k |m_k - m_k'| / (s_k dt),    spread_drift = max_k |log s_k - log s_k'| / dt,
+- ``ksd``: the kernel Stein discrepancy with the inverse multiquadric kernel ("Measuring
+  sample quality with kernels" (2017); :mod:`flowpost.discrepancy`). It needs only the
+  score, so the unknown normalising constant does not matter; it tends to zero only when
+  the ensemble matches the target. Computed on a random subset of ``discrepancy_points``
+  particles (fresh each window, drawn with a key derived from the window's step), reusing
+  the scores the stepper keeps in its state when it has them.
+- ``mean_logp``, the ensemble mean (``centre``) and standard deviation (``spread``) per
+  coordinate, and their drift per unit of flow time,
 
-(primes: the previous window; ``dt`` the flow time between the two), the count of
-non-finite particles, and the stepper's stats summarised over the window (means; sums for
-counters, see :mod:`flowpost.steppers.base`).
+      centre_drift = max_k |m_k - m_k'| / (s_k dt),  spread_drift = max_k |log s_k - log s_k'| / dt
+
+  (primes: the previous window; ``dt`` the flow time between the two);
+- for stochastic steppers (``stepper.stochastic`` true, the default): ``rhat``, the largest
+  rank-normalised split R-hat over coordinates, and ``ess``, the smallest bulk effective
+  sample size, from the thinned trajectories of the first ``trail_particles`` particles,
+  each an independent chain, kept in a bounded buffer (:mod:`flowpost.mixing`);
+- ``n_nonfinite`` and the stepper's stats summarised over the window (means; sums for
+  counters such as ``grad_evals`` and ``inner_capped``, see :mod:`flowpost.steppers.base`).
+
+Stop rules (the record of the window that stops the run says which, and so does
+``Result.reason``): a target discrepancy, a plateau, and a user rule on the history; the
+step and time budgets live in :func:`flowpost.run`. Blow-ups (non-finite particles or an
+explosive growth of the spread) ask the driver to roll back.
 """
 from __future__ import annotations
 
-from typing import Any, NamedTuple
+from functools import partial
+from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["Monitor", "Verdict", "summarise_stats"]
+from .discrepancy import stein_discrepancy
+from .mixing import ThinnedTrail, bulk_ess, split_rhat
+
+__all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats"]
 
 
 class Verdict(NamedTuple):
@@ -86,31 +108,83 @@ def _ensemble_figures(target, x):
 
 
 class Monitor:
-    """Default convergence monitor (mean log-density, moments and their drift, blow-up).
+    """Default convergence monitor.
 
     Parameters
     ----------
+    discrepancy : bool
+        Compute the kernel Stein discrepancy each window.
+    discrepancy_points : int
+        Particles (a random subset, fresh each window) used for the discrepancy; cost
+        O(m^2 d), memory O(m * block).
+    trail_particles : int
+        Particles whose thinned trajectories feed R-hat and ESS (stochastic steppers only;
+        0 turns them off).
+    trail_thin, trail_capacity : int
+        Keep every ``trail_thin``-th step of those trajectories, at most ``trail_capacity``
+        per particle (the oldest are dropped first).
+    target_discrepancy : float, optional
+        Stop once ``ksd`` falls below this value.
+    plateau : (str, int, float), optional
+        ``(figure, M, tol)``: stop once the mean of ``figure`` over the last ``M`` windows
+        differs from its mean over the ``M`` windows before by less than ``tol`` relative
+        (``|a - b| <= tol * max(|b|, 1e-12)``). ``("ksd", 5, 0.05)`` is a sensible choice.
+    stop_when : callable, optional
+        ``stop_when(history)`` returning a reason (a string, or True) to stop, or a false
+        value to go on.
     growth_limit : float
-        A window whose ensemble spread exceeds ``growth_limit`` times the largest spread seen
-        at the start or after the first window (in any coordinate) counts as an explosive blow-up and triggers a
-        roll-back, like non-finite particles.
+        A spread larger than ``growth_limit`` times the start's (or the first window's)
+        counts as an explosive blow-up.
     """
 
-    tape_particles: int = 0
-
-    def __init__(self, growth_limit: float = 1e6):
+    def __init__(
+        self,
+        *,
+        discrepancy: bool = True,
+        discrepancy_points: int = 256,
+        trail_particles: int = 64,
+        trail_thin: int = 5,
+        trail_capacity: int = 200,
+        target_discrepancy: float | None = None,
+        plateau: tuple[str, int, float] | None = None,
+        stop_when: Callable[[Any], Any] | None = None,
+        growth_limit: float = 1e6,
+    ):
+        if discrepancy_points < 2:
+            raise ValueError(f"discrepancy_points: need at least 2; got {discrepancy_points}")
+        if trail_particles < 0 or trail_thin < 1 or trail_capacity < 8:
+            raise ValueError("trail_particles >= 0, trail_thin >= 1 and trail_capacity >= 8 are required; "
+                             f"got {trail_particles}, {trail_thin}, {trail_capacity}")
+        if plateau is not None:
+            if not (isinstance(plateau, tuple) and len(plateau) == 3 and int(plateau[1]) >= 1):
+                raise ValueError(f"plateau: expected (figure, M >= 1, tol); got {plateau!r}")
+        if stop_when is not None and not callable(stop_when):
+            raise TypeError(f"stop_when: expected a callable on the history; got {type(stop_when).__name__}")
+        self.discrepancy = bool(discrepancy)
+        self.discrepancy_points = int(discrepancy_points)
+        self.trail_particles = int(trail_particles)
+        self.trail_thin = int(trail_thin)
+        self.trail_capacity = int(trail_capacity)
+        self.target_discrepancy = target_discrepancy
+        self.plateau = plateau
+        self.stop_when = stop_when
         self.growth_limit = float(growth_limit)
+        self.tape_particles = 0
         self._prev = None
         self._first_spread = 0.0
         self._scale_set = False
+        self._trail = None
 
     def open(self, target, stepper, state) -> None:
         fig = jax.device_get(_ensemble_figures(target, state.x))
-        self._prev = (0, fig["centre"], fig["spread"])
+        self._prev = (None, fig["centre"], fig["spread"])
         # the scale for "explosive growth": the larger of the starting spread and the spread
         # after the first window (a start with near-zero spread has no scale of its own)
         self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 0.0
         self._scale_set = False
+        stochastic = bool(getattr(stepper, "stochastic", True))
+        self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
+        self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
     def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
         fig = jax.device_get(_ensemble_figures(target, state.x))
@@ -122,6 +196,7 @@ class Monitor:
         rec["spread"] = np.asarray(fig["spread"], dtype=float)
         if self._prev is not None:
             s0, c0, sd0 = self._prev
+            s0 = step - len(next(iter(stats.values()), ())) if s0 is None else s0
             dt = max((step - s0) * h, 1e-300)
             with np.errstate(all="ignore"):
                 rec["centre_drift"] = float(np.max(np.abs(rec["centre"] - c0) / np.maximum(rec["spread"], 1e-300)) / dt)
@@ -133,6 +208,20 @@ class Monitor:
             if not self._scale_set and np.all(np.isfinite(rec["spread"])):
                 self._first_spread = max(self._first_spread, float(np.max(rec["spread"], initial=0.0)))
                 self._scale_set = True
+            if self.discrepancy:
+                score = getattr(state, "score", None)
+                m = min(self.discrepancy_points, state.x.shape[0])
+                key = jax.random.fold_in(jax.random.key(0x5D15C), int(step))
+                rec["ksd"] = float(_discrepancy(target, state.x, score, key, m))
+            if self._trail is not None and tape is not None and len(tape):
+                self._trail.push(np.asarray(tape, dtype=float))
+                if self._trail.size >= 8:
+                    chains = self._trail.groups()
+                    with np.errstate(all="ignore"):
+                        rhat = np.asarray(split_rhat(chains), dtype=float)
+                        ess = np.asarray(bulk_ess(chains), dtype=float)
+                    rec["rhat"] = float(np.nanmax(rhat)) if np.any(np.isfinite(rhat)) else float("nan")
+                    rec["ess"] = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
         rec.update(summarise_stats(stats))
         return rec
 
@@ -143,12 +232,74 @@ class Monitor:
         big = float(np.max(rec["spread"])) if np.size(rec["spread"]) else 0.0
         if self._first_spread and big > self.growth_limit * max(self._first_spread, 1e-12):
             return Verdict("rewind", f"explosive growth of the ensemble spread ({big:.3g}) at step {rec['step']}")
+        if self.target_discrepancy is not None and rec.get("ksd", np.inf) <= self.target_discrepancy:
+            return Verdict("stop", f"target discrepancy reached (ksd {rec['ksd']:.4g} <= {self.target_discrepancy:g})")
+        if self.plateau is not None:
+            name, m, tol = self.plateau
+            m = int(m)
+            vals = [r[name] for r in history if "event" not in r and name in r]
+            if len(vals) >= 2 * m:
+                recent, before = np.mean(vals[-m:]), np.mean(vals[-2 * m:-m])
+                if abs(recent - before) <= float(tol) * max(abs(before), 1e-12):
+                    return Verdict("stop", f"plateau: mean {name} changed by less than {float(tol):g} "
+                                           f"(relative) over the last {m} windows")
+        if self.stop_when is not None:
+            said = self.stop_when(history)
+            if said:
+                return Verdict("stop", said if isinstance(said, str) else "user stop rule (stop_when)")
         return GO
 
     def headline(self, record) -> dict[str, str]:
-        out = {"logp": f"{record['mean_logp']:.4g}"}
-        if "centre_drift" in record:
-            out["drift"] = f"{record['centre_drift']:.2g}"
+        out = {}
+        if "ksd" in record:
+            out["ksd"] = f"{record['ksd']:.3g}"
+        out["logp"] = f"{record['mean_logp']:.4g}"
+        if "rhat" in record:
+            out["rhat"] = f"{record['rhat']:.3f}"
         if "accept" in record:
             out["acc"] = f"{record['accept']:.2f}"
         return out
+
+
+class BareMonitor(Monitor):
+    """The least a run needs: non-finite detection and roll-back, nothing else (no
+    discrepancy, no moments' drift, no trajectories). For overhead measurements and for
+    users who monitor by other means."""
+
+    def __init__(self):
+        super().__init__(discrepancy=False, trail_particles=0)
+
+    def open(self, target, stepper, state) -> None:
+        self.tape_particles = 0
+
+    def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
+        bad = int(jax.device_get(_count_nonfinite(state.x)))
+        rec = {"step": int(step), "elapsed": float(elapsed), "n_nonfinite": bad}
+        rec.update(summarise_stats(stats))
+        return rec
+
+    def judge(self, history) -> Verdict:
+        rec = history.last
+        if rec["n_nonfinite"] > 0:
+            return Verdict("rewind", f"non-finite particles ({rec['n_nonfinite']}) at step {rec['step']}")
+        return GO
+
+    def headline(self, record) -> dict[str, str]:
+        return {}
+
+
+@jax.jit
+def _count_nonfinite(x):
+    return jnp.sum(~jnp.all(jnp.isfinite(x), axis=1))
+
+
+@partial(jax.jit, static_argnames=("m",))
+def _discrepancy(target, x, score, key, m):
+    n = x.shape[0]
+    if m < n:
+        idx = jax.random.choice(key, n, (m,), replace=False)
+        x = x[idx]
+        score = None if score is None else score[idx]
+    if score is None:
+        score = target.score(x)
+    return stein_discrepancy(x, score)
