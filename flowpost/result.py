@@ -156,6 +156,13 @@ class Result:
             lines.append(f"{k}: {v:.5g}" if np.ndim(v) == 0 else f"{k}: {v}")
         return "\n".join(lines)
 
+    def plot(self, params: list[str] | None = None, pair: tuple[str, str] | None = None):
+        """Monitor curves, marginal histograms of ``params`` and a scatter of ``pair``;
+        returns the matplotlib figure (see :func:`flowpost.plotting.run_figure`)."""
+        from .plotting import run_figure
+
+        return run_figure(self, params=params, pair=pair)
+
     def __repr__(self):
         return f"<flowpost Result: {self.n_particles} particles, {self.steps} steps, status={self.status!r}>"
 
