@@ -30,7 +30,9 @@ from .result import Result
 from .steppers.base import check_stepper
 from .target import Target, as_target
 
-__all__ = ["run"]
+__all__ = ["run", "evolve"]
+
+START_SALT = 0x7FFFFFFF  # the start key is fold_in(key, START_SALT); step t uses fold_in(key, t)
 
 CHECKPOINT_FORMAT = "flowpost-checkpoint"
 
@@ -195,7 +197,7 @@ def run(
     _check_start(bound, x0)
     monitor = Monitor() if monitor is None else monitor
 
-    state = _start(stepper, bound, x0, jax.random.fold_in(key, -1 & 0x7FFFFFFF))
+    state = _start(stepper, bound, x0, jax.random.fold_in(key, START_SALT))
     step = 0
     history = History()
     if resume is not None:
@@ -279,3 +281,22 @@ def run(
         report=report,
         events=events,
     )
+
+
+def evolve(stepper, target: Target, x: jax.Array, key: jax.Array, steps: int):
+    """Start ``stepper`` at the unconstrained ensemble ``x`` on a *bound* target and take
+    ``steps`` steps, all inside one traced function: no monitor, no Python between steps.
+
+    The key stream is the one :func:`run` uses (start: ``fold_in(key, START_SALT)``; step
+    ``t``: ``fold_in(key, t)``), so ``evolve`` and a ``run`` with the same key agree. Being
+    pure, it can be ``jit``-ted and ``vmap``-ped, for example over the data of many targets
+    (simulation-based calibration does this). Returns the final state.
+    """
+    state = stepper.start(target, x, jax.random.fold_in(key, START_SALT))
+
+    def body(st, t):
+        new, _ = stepper.advance(target, st, jax.random.fold_in(key, t))
+        return new, None
+
+    state, _ = jax.lax.scan(body, state, jnp.arange(int(steps)))
+    return state

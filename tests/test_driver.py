@@ -145,3 +145,14 @@ def test_load_rejects_foreign_and_truncated_files(tmp_path):
     np.savez(fake, meta=np.array(json.dumps({"format": "something-else"})))
     with pytest.raises(ValueError, match="not a readable flowpost result"):
         fp.load(fake)
+
+
+def test_evolve_matches_run():
+    """The pure, vmappable evolve() uses run()'s key stream."""
+    from flowpost.driver import evolve
+
+    r = fp.run(log_p, fp.Langevin(step_size=0.05), _init(), key=jax.random.key(6), steps=120, window=40,
+               progress=False)
+    bound, x0 = fp.Target(log_p).bind(_init())
+    st = jax.jit(evolve, static_argnums=(0, 4))(fp.Langevin(step_size=0.05), bound, x0, jax.random.key(6), 120)
+    np.testing.assert_allclose(np.asarray(st.x), r.unconstrained, rtol=1e-5, atol=1e-5)
