@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from .history import History
+from .target import ROOT_NAME
 
 __all__ = ["Result", "load"]
 
@@ -95,7 +96,7 @@ class Result:
             self._names = list(layout.names)
             self._shapes = [list(s.shape) for s in layout.slots]
             self._supports = [s.support.describe() for s in layout.slots]
-            self._root_array = layout.treedef.num_leaves == 1 and layout.names == ("x",)
+            self._root_array = layout.treedef.num_leaves == 1 and layout.names == (ROOT_NAME,)
             self._constrained = {n: np.asarray(l) for n, l in zip(self._names, leaves)}
             self.stepper_description = repr(stepper)
 

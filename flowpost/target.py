@@ -27,6 +27,8 @@ from .support import Real, as_support
 
 __all__ = ["Target", "Layout", "as_target"]
 
+ROOT_NAME = "theta"  # the name of a parameter given as one plain array
+
 
 def _path_name(path) -> str:
     parts = []
@@ -39,7 +41,7 @@ def _path_name(path) -> str:
             parts.append(str(p.name))
         else:  # pragma: no cover - other key kinds
             parts.append(str(p))
-    return ".".join(parts) if parts else "x"
+    return ".".join(parts) if parts else ROOT_NAME
 
 
 @dataclass(frozen=True)
@@ -189,7 +191,7 @@ class Target:
         elif isinstance(support, Mapping):
             sup = {str(k): as_support(v) for k, v in support.items()}
         else:
-            sup = {"x": as_support(support)}
+            sup = {ROOT_NAME: as_support(support)}
         self._support = tuple(sorted(sup.items()))
         self.layout = _layout
 

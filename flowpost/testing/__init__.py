@@ -1,0 +1,49 @@
+"""flowpost's test kit for users' own log-densities (and for flowpost's own tests).
+
+- Score checks: :func:`score_agreement`, :func:`assert_score_matches` (autodiff against
+  central finite differences in float64).
+- Health checks: :func:`check_health` and the ``assert_*`` helpers (scalar output, finite on
+  a region, jit and vmap agree, deterministic, exchangeable data rows).
+- Simulation-based calibration: :func:`calibrate`.
+- Closed-form reference families: :data:`CLOSED_FORM_MODELS` (normal-normal, beta-binomial,
+  gamma-Poisson, Dirichlet-multinomial, Bayesian linear regression).
+- Moment assertions in Monte-Carlo standard errors: :func:`moment_zscores`,
+  :func:`assert_moments_match`.
+- A pytest plugin with fixtures (:mod:`flowpost.testing.plugin`).
+"""
+from .calibration import CalibrationReport, calibrate
+from .checks import (
+    HealthReport,
+    ScoreAgreement,
+    assert_deterministic,
+    assert_exchangeable_rows,
+    assert_finite_on_region,
+    assert_jit_matches_eager,
+    assert_scalar_output,
+    assert_score_matches,
+    assert_vmap_matches_loop,
+    check_health,
+    points_near,
+    score_agreement,
+)
+from .moments import MomentZScores, assert_moments_match, moment_zscores
+from .references import (
+    CLOSED_FORM_MODELS,
+    BetaBinomial,
+    ClosedFormModel,
+    DirichletMultinomial,
+    GammaPoisson,
+    LinearRegressionKnownNoise,
+    NormalKnownVariance,
+)
+
+__all__ = [
+    "calibrate", "CalibrationReport",
+    "score_agreement", "assert_score_matches", "ScoreAgreement",
+    "check_health", "HealthReport", "assert_scalar_output", "assert_finite_on_region",
+    "assert_jit_matches_eager", "assert_vmap_matches_loop", "assert_deterministic",
+    "assert_exchangeable_rows", "points_near",
+    "moment_zscores", "assert_moments_match", "MomentZScores",
+    "CLOSED_FORM_MODELS", "ClosedFormModel", "NormalKnownVariance", "BetaBinomial", "GammaPoisson",
+    "DirichletMultinomial", "LinearRegressionKnownNoise",
+]
