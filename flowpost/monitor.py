@@ -174,6 +174,7 @@ class Monitor:
         self._first_spread = 0.0
         self._scale_set = False
         self._trail = None
+        self._clock = None
 
     def open(self, target, stepper, state) -> None:
         fig = jax.device_get(_ensemble_figures(target, state.x))
@@ -182,29 +183,39 @@ class Monitor:
         # after the first window (a start with near-zero spread has no scale of its own)
         self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 0.0
         self._scale_set = False
+        self._clock = None
         stochastic = bool(getattr(stepper, "stochastic", True))
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
     def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
         fig = jax.device_get(_ensemble_figures(target, state.x))
+        n_steps = len(next(iter(stats.values()), ()))
         h = float(getattr(stepper, "step_size", 1.0))
-        rec: dict[str, Any] = {"step": int(step), "flow_time": step * h, "elapsed": float(elapsed)}
+        if self._clock is None:  # first window since open(): the flow time of the steps before it
+            self._clock = (step - n_steps) * h
+        # flow time advanced in this window: the steps' own sizes when the stepper reports them
+        # (a tuned MALA step), else the configured step size
+        sizes = np.asarray(stats.get("step_size", np.full(n_steps, h)), dtype=float)
+        window_time = float(np.sum(sizes[np.isfinite(sizes)])) if sizes.size else n_steps * h
+        now = self._clock + window_time
+        rec: dict[str, Any] = {"step": int(step), "flow_time": now, "elapsed": float(elapsed)}
         rec["mean_logp"] = float(fig["mean_logp"])
         rec["n_nonfinite"] = int(fig["n_nonfinite"])
         rec["centre"] = np.asarray(fig["centre"], dtype=float)
         rec["spread"] = np.asarray(fig["spread"], dtype=float)
         if self._prev is not None:
-            s0, c0, sd0 = self._prev
-            s0 = step - len(next(iter(stats.values()), ())) if s0 is None else s0
-            dt = max((step - s0) * h, 1e-300)
+            t0, c0, sd0 = self._prev
+            t0 = self._clock if t0 is None else t0
+            dt = max(now - t0, 1e-300)
             with np.errstate(all="ignore"):
                 rec["centre_drift"] = float(np.max(np.abs(rec["centre"] - c0) / np.maximum(rec["spread"], 1e-300)) / dt)
                 ratio = np.abs(np.log(rec["spread"]) - np.log(sd0))
                 ratio = ratio[np.isfinite(ratio)]  # a coordinate that started with zero spread has no log-drift
                 rec["spread_drift"] = float(np.max(ratio)) / dt if ratio.size else float("nan")
         if rec["n_nonfinite"] == 0:
-            self._prev = (step, rec["centre"], rec["spread"])
+            self._clock = now
+            self._prev = (now, rec["centre"], rec["spread"])
             if not self._scale_set and np.all(np.isfinite(rec["spread"])):
                 self._first_spread = max(self._first_spread, float(np.max(rec["spread"], initial=0.0)))
                 self._scale_set = True

@@ -99,6 +99,8 @@ class BlobFlow:
     form: str = "energy"
     block: int = DEFAULT_BLOCK
 
+    stochastic = False  # deterministic: the monitor skips R-hat and ESS
+
     def __post_init__(self):
         if not float(self.step_size) > 0 or not np.isfinite(float(self.step_size)):
             raise ValueError(f"step_size: must be a positive finite number; got {self.step_size}")

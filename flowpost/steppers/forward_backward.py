@@ -212,6 +212,8 @@ class ForwardBackward:
             back = KernelEntropy(bandwidth=self.bandwidth, **kw)
         return Split((Explicit(), back), step_size=self.step_size, order="lie")
 
+    stochastic = False  # deterministic: the monitor skips R-hat and ESS
+
     def start(self, target, x, key) -> SplitState:
         return self.scheme.start(target, x, key)
 

@@ -218,6 +218,7 @@ class SubStep:
 
     moves_position: ClassVar[bool] = True
     uses_momentum: ClassVar[bool] = False
+    stochastic: ClassVar[bool] = False  # True for parts that draw noise
 
     def __post_init__(self):
         object.__setattr__(self, "fraction", _check_fraction(type(self).__name__, self.fraction))
@@ -368,6 +369,8 @@ class ExactMap(SubStep):
 class HeatFlow(SubStep):
     """Exact heat flow for time ``t``: ``x <- x + sqrt(2t) xi``, ``xi ~ N(0, I)``."""
 
+    stochastic: ClassVar[bool] = True
+
     fraction: float = 1.0
 
     def apply(self, ctx, x, v, t, key):
@@ -440,6 +443,7 @@ class Friction(SubStep):
 
     moves_position: ClassVar[bool] = False
     uses_momentum: ClassVar[bool] = True
+    stochastic: ClassVar[bool] = True
 
     def __post_init__(self):
         super().__post_init__()
@@ -532,6 +536,11 @@ class Split:
             return tuple((p, p.fraction) for p in self.parts)
         head = tuple((p, p.fraction / 2) for p in self.parts[:-1])
         return head + ((self.parts[-1], self.parts[-1].fraction),) + tuple(reversed(head))
+
+    @property
+    def stochastic(self) -> bool:
+        """True when some part draws noise (the monitor then tracks R-hat and ESS)."""
+        return any(p.stochastic for p in self.parts)
 
     @property
     def has_momentum(self) -> bool:
