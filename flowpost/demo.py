@@ -57,11 +57,18 @@ def main(argv: list[str] | None = None) -> int:
     t, temp = kiln_log()
     target = fp.Target(cooling_log_p, data=(jnp.asarray(t), jnp.asarray(temp)),
                        support={"k": fp.Positive(), "sigma": fp.Positive()})
-    n = 1000
-    init = {"k": jnp.full(n, 0.3), "room": jnp.full(n, 20.0), "sigma": jnp.full(n, 10.0)}
+    n = 400
+    # start at the prior's centre with a small jitter: the ensemble-preconditioned flow needs
+    # spread in every direction to move (a constant start would never leave it), and grows
+    # its spread to the posterior's by itself; a start much wider than the posterior would
+    # make its first steps too large in the narrow directions
+    kk, kr, ks = jax.random.split(jax.random.key(1), 3)
+    init = {"k": 0.3 * jnp.exp(1e-3 * jax.random.normal(kk, (n,))),
+            "room": 20.0 + 1e-2 * jax.random.normal(kr, (n,)),
+            "sigma": 10.0 * jnp.exp(1e-3 * jax.random.normal(ks, (n,)))}
     stepper = _demo_stepper(fp)
     print(f"Kiln cooling log: {len(t)} readings over {t[-1]:.1f} h. Fitting with {stepper!r}, {n} particles.")
-    result = fp.run(target, stepper, init, key=jax.random.key(0), steps=4000, window=250, progress=True)
+    result = fp.run(target, stepper, init, key=jax.random.key(0), steps=3000, window=250, progress=True)
     print()
     print(result.summary())
     print("\nMonitor trace (one row per window of 250 steps):")
@@ -106,3 +113,8 @@ def _plot(result, t, temp, path):
     fig.savefig(path, dpi=100)
     plt.close(fig)
     print(f"Plot of the fit saved to {os.path.abspath(path)}")
+    run_path = os.path.splitext(path)[0] + "_run.png"
+    fig = result.plot(params=["k", "room", "sigma"], pair=("k", "room"))
+    fig.savefig(run_path, dpi=80)
+    plt.close(fig)
+    print(f"Picture of the run (monitor curves, marginals) saved to {os.path.abspath(run_path)}")

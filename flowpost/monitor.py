@@ -57,6 +57,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from .discrepancy import stein_discrepancy
+from .kernels import whiten
 from .mixing import ThinnedTrail, bulk_ess, split_rhat
 
 __all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats"]
@@ -116,7 +117,13 @@ class Monitor:
         Compute the kernel Stein discrepancy each window.
     discrepancy_points : int
         Particles (a random subset, fresh each window) used for the discrepancy; cost
-        O(m^2 d), memory O(m * block).
+        O(m^2 d), memory O(m * block). With m exact draws the (V-statistic) discrepancy is
+        about sqrt(E|score|^2 / m), its floor; a value well above that floor means the
+        ensemble is not yet the target.
+    whitened : bool
+        Compute the discrepancy in coordinates whitened by the subset's own covariance
+        (``y = L^-1 (x - m)``, score ``L^T s``), so that it does not depend on the units of
+        the parameters (the IMQ kernel's length scale 1 then means one ensemble sd).
     trail_particles : int
         Particles whose thinned trajectories feed R-hat and ESS (stochastic steppers only;
         0 turns them off).
@@ -142,6 +149,7 @@ class Monitor:
         *,
         discrepancy: bool = True,
         discrepancy_points: int = 256,
+        whitened: bool = True,
         trail_particles: int = 64,
         trail_thin: int = 5,
         trail_capacity: int = 200,
@@ -162,6 +170,7 @@ class Monitor:
             raise TypeError(f"stop_when: expected a callable on the history; got {type(stop_when).__name__}")
         self.discrepancy = bool(discrepancy)
         self.discrepancy_points = int(discrepancy_points)
+        self.whitened = bool(whitened)
         self.trail_particles = int(trail_particles)
         self.trail_thin = int(trail_thin)
         self.trail_capacity = int(trail_capacity)
@@ -223,7 +232,7 @@ class Monitor:
                 score = getattr(state, "score", None)
                 m = min(self.discrepancy_points, state.x.shape[0])
                 key = jax.random.fold_in(jax.random.key(0x5D15C), int(step))
-                rec["ksd"] = float(_discrepancy(target, state.x, score, key, m))
+                rec["ksd"] = float(_discrepancy(target, state.x, score, key, m, self.whitened))
             if self._trail is not None and tape is not None and len(tape):
                 self._trail.push(np.asarray(tape, dtype=float))
                 if self._trail.size >= 8:
@@ -304,8 +313,8 @@ def _count_nonfinite(x):
     return jnp.sum(~jnp.all(jnp.isfinite(x), axis=1))
 
 
-@partial(jax.jit, static_argnames=("m",))
-def _discrepancy(target, x, score, key, m):
+@partial(jax.jit, static_argnames=("m", "whitened"))
+def _discrepancy(target, x, score, key, m, whitened):
     n = x.shape[0]
     if m < n:
         idx = jax.random.choice(key, n, (m,), replace=False)
@@ -313,4 +322,10 @@ def _discrepancy(target, x, score, key, m):
         score = None if score is None else score[idx]
     if score is None:
         score = target.score(x)
+    if whitened and x.shape[0] > x.shape[1]:
+        # y = L^-1 (x - m) with L L^T the ensemble covariance; the score transforms as
+        # grad_y log pi = L^T grad_x log pi. The discrepancy is then the same for a target and
+        # any affine image of it, instead of depending on the parameters' units.
+        w = whiten(jax.lax.stop_gradient(x))
+        x, score = w.apply(x), score @ w.chol
     return stein_discrepancy(x, score)
