@@ -10,10 +10,25 @@ of KL(mu | posterior) and watches its convergence.
 """
 from .driver import run
 from .history import History
-from .monitor import Monitor, Verdict
+from .monitor import BareMonitor, Monitor, Verdict
 from .result import Result, load
 from .steppers.base import ParticleState, ScoredState, Stepper
+from .steppers.blob import BlobFlow
+from .steppers.ensemble_langevin import EnsembleLangevin
+from .steppers.forward_backward import ForwardBackward, GaussianEntropy, KernelEntropy
+from .steppers.implicit_langevin import ImplicitLangevin
+from .steppers.jko import JKO
+from .steppers.kinetic_langevin import KineticLangevin
 from .steppers.langevin import Langevin
+from .steppers.mala import MALA
+from .steppers.proximal_langevin import ProximalLangevin
+from .steppers.split import (
+    Drift, ExactMap, Explicit, Friction, HeatFlow, Kick, Proximal, Split, SubStep,
+)
+from .steppers.svgd import SVGD
+from .inner import InnerSolver
+from .kernels import IMQ, RBF
+from . import prox
 from .support import Interval, Positive, Real, Simplex
 from .target import Target
 
@@ -22,6 +37,10 @@ __version__ = "0.1.0"
 __all__ = [
     "run", "load", "Target", "Result", "History", "Monitor", "Verdict",
     "Stepper", "ParticleState", "ScoredState",
-    "Langevin",
+    "Langevin", "MALA", "SVGD", "BlobFlow", "EnsembleLangevin",
+    "ImplicitLangevin", "JKO",
+    "Split", "SubStep", "Explicit", "Proximal", "ExactMap", "HeatFlow", "Kick", "Drift", "Friction",
+    "ForwardBackward", "GaussianEntropy", "KernelEntropy", "ProximalLangevin", "KineticLangevin",
+    "InnerSolver", "RBF", "IMQ", "prox", "BareMonitor",
     "Real", "Positive", "Interval", "Simplex",
 ]
