@@ -83,6 +83,7 @@ import numbers
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy import fft as _sfft
+from scipy import special as _sspecial
 from scipy import stats as _sstats
 
 __all__ = [
@@ -157,7 +158,7 @@ def _normal_scores(x: np.ndarray) -> np.ndarray:
     m, n, p = x.shape
     total = m * n
     ranks = _sstats.rankdata(x.reshape(total, p), method="average", axis=0)
-    z = _sstats.norm.ppf((ranks - 0.375) / (total + 0.25))
+    z = _sspecial.ndtri((ranks - 0.375) / (total + 0.25))  # the standard normal quantile
     return z.reshape(m, n, p)
 
 
