@@ -73,6 +73,10 @@ class Verdict(NamedTuple):
 GO = Verdict("go")
 
 
+def _nonfinite(rec) -> Verdict:
+    return Verdict("rewind", f"non-finite particles ({rec['n_nonfinite']}) at step {rec['step']}")
+
+
 def _is_counter(name: str) -> bool:
     return name.startswith("n_") or name.endswith("_evals") or name.endswith("_capped")
 
@@ -248,7 +252,7 @@ class Monitor:
     def judge(self, history) -> Verdict:
         rec = history.last
         if rec["n_nonfinite"] > 0:
-            return Verdict("rewind", f"non-finite particles ({rec['n_nonfinite']}) at step {rec['step']}")
+            return _nonfinite(rec)
         big = float(np.max(rec["spread"])) if np.size(rec["spread"]) else 0.0
         if self._first_spread and big > self.growth_limit * max(self._first_spread, 1e-12):
             return Verdict("rewind", f"explosive growth of the ensemble spread ({big:.3g}) at step {rec['step']}")
@@ -300,9 +304,7 @@ class BareMonitor(Monitor):
 
     def judge(self, history) -> Verdict:
         rec = history.last
-        if rec["n_nonfinite"] > 0:
-            return Verdict("rewind", f"non-finite particles ({rec['n_nonfinite']}) at step {rec['step']}")
-        return GO
+        return _nonfinite(rec) if rec["n_nonfinite"] > 0 else GO
 
     def headline(self, record) -> dict[str, str]:
         return {}
