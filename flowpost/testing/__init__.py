@@ -11,31 +11,37 @@
   :func:`assert_moments_match`.
 - A pytest plugin with fixtures (:mod:`flowpost.testing.plugin`).
 """
-from .calibration import CalibrationReport, calibrate
-from .checks import (
-    HealthReport,
-    ScoreAgreement,
-    assert_deterministic,
-    assert_exchangeable_rows,
-    assert_finite_on_region,
-    assert_jit_matches_eager,
-    assert_scalar_output,
-    assert_score_matches,
-    assert_vmap_matches_loop,
-    check_health,
-    points_near,
-    score_agreement,
-)
-from .moments import MomentZScores, assert_moments_match, moment_zscores
-from .references import (
-    CLOSED_FORM_MODELS,
-    BetaBinomial,
-    ClosedFormModel,
-    DirichletMultinomial,
-    GammaPoisson,
-    LinearRegressionKnownNoise,
-    NormalKnownVariance,
-)
+from __future__ import annotations
+
+import importlib
+
+_WHERE = {
+    "calibrate": "calibration", "CalibrationReport": "calibration",
+    **{n: "checks" for n in (
+        "HealthReport", "ScoreAgreement", "assert_deterministic", "assert_exchangeable_rows",
+        "assert_finite_on_region", "assert_jit_matches_eager", "assert_scalar_output",
+        "assert_score_matches", "assert_vmap_matches_loop", "check_health", "points_near",
+        "score_agreement")},
+    **{n: "moments" for n in ("MomentZScores", "assert_moments_match", "moment_zscores")},
+    **{n: "references" for n in (
+        "CLOSED_FORM_MODELS", "BetaBinomial", "ClosedFormModel", "DirichletMultinomial", "GammaPoisson",
+        "LinearRegressionKnownNoise", "NormalKnownVariance")},
+}
+
+
+def __getattr__(name: str):
+    """Import on first use (PEP 562): the pytest plugin lives in this package and is loaded
+    by every pytest run, which should not pay for JAX unless a fixture is used."""
+    if name not in _WHERE:
+        raise AttributeError(f"module 'flowpost.testing' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{_WHERE[name]}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_WHERE))
+
 
 __all__ = [
     "calibrate", "CalibrationReport",
