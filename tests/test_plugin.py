@@ -17,6 +17,17 @@ import pytest
 
 from flowpost.testing.plugin import describe_rank_shape
 
+# The in-process runs below (pytester) restore sys.modules after each run; a compiled
+# extension such as jaxlib must not be dropped and imported again (the process aborts), so
+# everything the fixtures import is imported here first, outside the runs. flowpost's public
+# names are lazy (PEP 562), so the plugin alone would not have imported them.
+import jax  # noqa: E402,F401
+import flowpost.testing.calibration  # noqa: E402,F401
+import flowpost.testing.checks  # noqa: E402,F401
+import flowpost.testing.moments  # noqa: E402,F401
+import flowpost.testing.references  # noqa: E402,F401
+import flowpost.steppers.langevin  # noqa: E402,F401
+
 pytest_plugins = ["pytester"]
 
 SUBPROCESS_TIMEOUT = 240  # seconds; the runs take a few seconds, this is only a guard

@@ -173,11 +173,10 @@ _SETTINGS_KEY = pytest.StashKey[Settings]()
 
 
 def _ini_type(parse) -> str:
-    """Typed ini keys where pytest has them (8.4 and later; needed by its native TOML table
-    ``[tool.pytest]``, which keeps numbers as numbers), plain strings before."""
-    if tuple(pytest.version_tuple[:2]) < (8, 4):
-        return "string"
-    return "int" if parse in (_positive_int, _non_negative_int) else "float"
+    """Ini keys are declared as strings and parsed here, so that a bad value gets this
+    plugin's message naming the key whatever pytest's version (pytest 9.2 checks typed keys
+    itself, with a message that does not name the key)."""
+    return "string"
 
 
 def pytest_addoption(parser: pytest.Parser) -> None:
