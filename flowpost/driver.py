@@ -67,8 +67,13 @@ def _start(stepper, target, x, key):
     return stepper.start(target, x, key)
 
 
+@jax.jit
+def _value_and_score(target, x):
+    return target.value_and_score(x)
+
+
 def _check_start(target: Target, x: jax.Array) -> None:
-    logp, score = jax.jit(type(target).value_and_score)(target, x)
+    logp, score = _value_and_score(target, x)
     logp, score = np.asarray(logp), np.asarray(score)
     bad_lp = ~np.isfinite(logp)
     bad_sc = ~np.isfinite(score)

@@ -21,6 +21,7 @@ chi-square test from ``scipy.stats.chisquare``.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any, Callable
 
 import jax
@@ -33,6 +34,23 @@ from ..steppers.base import check_stepper
 from ..target import Target
 
 __all__ = ["calibrate", "CalibrationReport"]
+
+
+@partial(jax.jit, static_argnames=("stepper", "steps", "batch"))
+def _ranks(stepper, steps, batch, template, x0, datas, truths, keys):
+    """Ranks of the true values among each dataset's final particles, all datasets in one
+    compiled function (``lax.map`` over chunks of ``batch`` vmapped datasets); compiled once
+    per (stepper, steps, batch, model, shapes)."""
+    target_def = jax.tree_util.tree_structure(template)
+
+    def one(args):
+        data, truth, k = args
+        tgt = jax.tree_util.tree_unflatten(target_def, jax.tree_util.tree_leaves(data))
+        state = evolve(stepper, tgt, x0, k, steps)
+        draws = tgt.constrained_matrix(state.x)
+        return jnp.sum(draws < truth[None, :], axis=0), jnp.all(jnp.isfinite(draws))
+
+    return jax.lax.map(one, (datas, truths, keys), batch_size=batch)
 
 
 @dataclass
@@ -160,21 +178,11 @@ def calibrate(
     if (n_draws + 1) % bins:
         raise ValueError(f"init: the number of particles L = {n_draws} must make L + 1 divisible by "
                          f"bins = {bins} (e.g. L = {bins * max(1, (n_draws + 1) // bins) - 1})")
-    target_def = jax.tree_util.tree_structure(bound)
     layout = bound.layout
     true_mat = jax.vmap(lambda th: jnp.concatenate(
         [jnp.reshape(l, (-1,)) for l in layout.treedef.flatten_up_to(th)]))(thetas)
-
-    def one(args):
-        data, truth, k = args
-        tgt = jax.tree_util.tree_unflatten(target_def, jax.tree_util.tree_leaves(data))
-        state = evolve(stepper, tgt, x0, k, steps)
-        draws = tgt.constrained_matrix(state.x)
-        finite = jnp.all(jnp.isfinite(draws))
-        return jnp.sum(draws < truth[None, :], axis=0), finite
-
     run_keys = jax.random.split(k_run, n_datasets)
-    ranks, finite = jax.jit(lambda a: jax.lax.map(one, a, batch_size=int(batch)))((datas, true_mat, run_keys))
+    ranks, finite = _ranks(stepper, steps, int(batch), bound, x0, datas, true_mat, run_keys)
     ranks, finite = np.asarray(ranks), np.asarray(finite)
     names = layout.element_names()
     ok = ranks[finite]
