@@ -283,7 +283,8 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
     def residual_of(g):
         return jnp.max(jnp.stack([jnp.max(jnp.abs(l)).astype(vdtype) for l in jax.tree.leaves(g)]))
 
-    if solver.uses_linesearch:
+    uses_ls = bool(solver.uses_linesearch)
+    if uses_ls:
         value_and_grad = optax.value_and_grad_from_state(objective)
 
         def evaluate(x, state):
@@ -310,35 +311,48 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
 
     state0 = opt.init(x0)
     value0, grad0, n0 = evaluate(x0, state0)
-    carry0 = (x0, state0, value0, grad0, jnp.zeros((), jnp.int32), n0)
+    zero = jnp.zeros((), jnp.int32)
+    carry0 = (x0, state0, value0, grad0, zero, n0, residual_of(grad0), zero)
 
     def keep_going(carry):
-        _, _, value, grad, k, _ = carry
+        _, _, value, grad, k, _, _, idle = carry
         r = residual_of(grad)
         # A NaN residual compares false, so the loop also stops on a
-        # non-finite gradient; it stops on a non-finite value too.
-        return (r > tol) & (k < max_iters) & jnp.isfinite(value)
+        # non-finite gradient; it stops on a non-finite value too, and after
+        # STALL_PATIENCE iterations without progress (see below).
+        return (r > tol) & (k < max_iters) & jnp.isfinite(value) & (idle < STALL_PATIENCE)
 
     def step(carry):
-        x, state, value, grad, k, n = carry
+        x, state, value, grad, k, n, best, idle = carry
         updates, state = opt.update(grad, state, x, value=value, grad=grad, value_fn=objective)
         x = optax.apply_updates(x, updates)
         x = jax.tree.map(lambda new, old: new.astype(old.dtype), x, x0)
         n = n + ls_evals(state)
-        value, grad, fresh = evaluate(x, state)
-        return (x, state, value, grad, k + 1, n + fresh)
+        new_value, grad, fresh = evaluate(x, state)
+        # Progress: a lower value or a smaller gradient than any seen so far. At the rounding
+        # floor of float32 the line search fails again and again without either; the loop
+        # then stops after STALL_PATIENCE such iterations instead of running to the cap at
+        # full line-search cost (the solve is reported as capped: above tolerance).
+        r = residual_of(grad)
+        # (Only with a line search: first-order optimisers such as adam are not monotone.)
+        progress = (new_value < value) | (r < best) | (not uses_ls)
+        idle = jnp.where(progress, 0, idle + 1)
+        return (x, state, new_value, grad, k + 1, n + fresh, jnp.minimum(best, r), idle)
 
-    x, _, _, grad, k, n = jax.lax.while_loop(keep_going, step, carry0)
+    x, _, _, grad, k, n, _, idle = jax.lax.while_loop(keep_going, step, carry0)
     r = residual_of(grad)
     converged = r <= tol
     return x, SolveReport(
         iters=k,
         residual=r,
         converged=converged,
-        capped=(~converged) & (k >= max_iters),
+        capped=(~converged) & ((k >= max_iters) | (idle >= STALL_PATIENCE)),
         grad_evals=n,
     )
 
+
+
+STALL_PATIENCE = 5  # iterations without progress after which a solve stops (reported capped)
 
 
 def _check_number(name: str, value: Any, *, minimum: float, strict: bool = False) -> None:

@@ -253,3 +253,27 @@ def test_bad_inputs_raise():
         minimise({"tol": 1e-6}, lambda x: jnp.sum(x**2), jnp.ones(3))
     with pytest.raises(ValueError, match="x0 must contain at least one array leaf"):
         minimise(InnerSolver(), lambda x: 0.0, {})
+
+
+def test_float32_stall_stops_early_and_is_reported_capped():
+    """In float32 a tolerance below the rounding floor cannot be met: the line search fails
+    step after step. The loop stops after STALL_PATIENCE iterations without progress (not at
+    max_iters = 500, which would cost up to 500 x 20 line-search evaluations) and reports the
+    solve as capped, with the residual above tol."""
+    from flowpost.inner import STALL_PATIENCE
+
+    a = jnp.array([1e4, 1.0, 3.0], jnp.float32)
+
+    def f(x):
+        return 0.5 * jnp.sum(a * (x - 1.2345678) ** 2) + 1e-3 * jnp.sum(jnp.cos(x)) + 1000.0
+
+    solver = InnerSolver(tol=1e-9, max_iters=500)
+    x, rep = jax.jit(lambda x0: minimise(solver, f, x0))(jnp.zeros(3, jnp.float32))
+    assert bool(rep.capped) and not bool(rep.converged)
+    assert float(rep.residual) > 1e-9
+    assert int(rep.iters) < 100 and int(rep.grad_evals) < 500
+    assert x.dtype == jnp.float32
+    # where it stopped, the gradient is at float32's resolution of this objective
+    # (|f| ~ 1e3, eps ~ 1.2e-7, curvature up to 1e4: sqrt(2 eps |f| L) ~ 0.5)
+    assert float(rep.residual) < 0.5
+    assert STALL_PATIENCE >= 2
