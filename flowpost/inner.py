@@ -27,9 +27,11 @@ The residual is the **absolute max-abs (infinity) norm of the gradient**,
 
 taken over all leaves of the pytree ``x``. The loop stops at the first
 iterate with :math:`r(x_k) \le \mathrm{tol}`, when ``max_iters`` updates
-have been made, or when the residual or the value :math:`f(x_k)` is not
+have been made, when the residual or the value :math:`f(x_k)` is not
 finite (NaN/inf: continuing would not help; ``converged`` and ``capped`` are
-then false). The tolerance is absolute, so
+then false), or, with a line search, after ``STALL_PATIENCE`` iterations in a
+row that lowered neither the value nor the best residual (the rounding floor;
+reported as ``capped``). The tolerance is absolute, so
 it has to be matched to the scale of ``f`` and to the precision: in float32
 the gradient itself carries a rounding error of roughly
 :math:`10^{-7}\,\lVert\text{terms of } f\rVert`, so a ``tol`` far below that
@@ -168,8 +170,8 @@ class SolveReport(NamedTuple):
     converged : bool array
         ``residual <= tol``.
     capped : bool array
-        Stopped because ``max_iters`` was reached with the residual still
-        above ``tol``.
+        Stopped above ``tol`` because ``max_iters`` was reached or the solve
+        stalled (no progress for ``STALL_PATIENCE`` line-search iterations).
     grad_evals : int32 array
         Value-and-gradient evaluations of ``fun`` made by the solver for this
         problem: one at ``x0``, plus for L-BFGS with line search the number
