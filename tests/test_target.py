@@ -104,8 +104,9 @@ def test_bad_stepper_and_key_are_named():
         fp.run(_model, object(), _init(), key=jax.random.key(0), steps=1, progress=False)
     with pytest.raises(TypeError, match=r"key"):
         fp.run(_model, fp.Langevin(step_size=0.1), _init(), key=0, steps=1, progress=False)
-    with pytest.raises(ValueError, match=r"step_size"):
-        fp.Langevin(step_size=-1.0)
+    for bad in (-1.0, 0.0, float("inf"), float("nan")):
+        with pytest.raises(ValueError, match=r"step_size: must be a positive finite number"):
+            fp.Langevin(step_size=bad)
 
 
 def test_data_is_traced_not_baked_in():

@@ -51,11 +51,12 @@ A user's own stepper (gradient ascent with noise, written out)::
 """
 from __future__ import annotations
 
+import math
 from typing import Any, NamedTuple, Protocol, runtime_checkable
 
 import jax
 
-__all__ = ["Stepper", "ParticleState", "ScoredState", "check_stepper"]
+__all__ = ["Stepper", "ParticleState", "ScoredState", "check_stepper", "positive_number"]
 
 
 @runtime_checkable
@@ -95,3 +96,17 @@ def check_stepper(stepper) -> None:
             f"stepper: {type(stepper).__name__} must be hashable (use a frozen dataclass without "
             "array fields) because it is a static argument of the compiled step"
         ) from err
+
+
+def positive_number(name: str, value: Any) -> float:
+    """``float(value)`` when it is a positive finite number, else a clear error naming
+    ``name`` (every stepper checks its ``step_size`` with this)."""
+    if isinstance(value, bool):
+        raise TypeError(f"{name}: must be a positive number; got {value!r}")
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise TypeError(f"{name}: must be a positive number; got {value!r}") from None
+    if not (v > 0 and math.isfinite(v)):
+        raise ValueError(f"{name}: must be a positive finite number; got {value!r}")
+    return v

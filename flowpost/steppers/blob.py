@@ -56,11 +56,10 @@ from dataclasses import dataclass
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 from jax.scipy.linalg import solve_triangular
 
 from ..kernels import DEFAULT_BLOCK, RBF, grad_log_kde, kernel_sums, normal_reference_bandwidth, whiten
-from .base import ScoredState
+from .base import ScoredState, positive_number
 
 __all__ = ["BlobFlow"]
 
@@ -102,8 +101,7 @@ class BlobFlow:
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
 
     def __post_init__(self):
-        if not float(self.step_size) > 0 or not np.isfinite(float(self.step_size)):
-            raise ValueError(f"step_size: must be a positive finite number; got {self.step_size}")
+        positive_number("step_size", self.step_size)
         if self.bandwidth is not None:
             b = float(self.bandwidth)
             if not (b > 0 and math.isfinite(b)):

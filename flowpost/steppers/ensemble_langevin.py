@@ -47,11 +47,10 @@ from dataclasses import dataclass
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 from jax import lax
 
 from ..kernels import map_row_blocks
-from .base import ParticleState
+from .base import ParticleState, positive_number
 
 __all__ = ["EnsembleLangevin"]
 
@@ -77,8 +76,7 @@ class EnsembleLangevin:
     block: int = 512
 
     def __post_init__(self):
-        if not float(self.step_size) > 0 or not np.isfinite(float(self.step_size)):
-            raise ValueError(f"step_size: must be a positive finite number; got {self.step_size}")
+        positive_number("step_size", self.step_size)
         if isinstance(self.block, bool) or not isinstance(self.block, int) or self.block < 1:
             raise ValueError(f"block: must be a positive int; got {self.block!r}")
 

@@ -53,7 +53,6 @@ Source: "Proximal Markov chain Monte Carlo algorithms" (Statistics and Computing
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Any, Callable, NamedTuple
 
@@ -61,6 +60,7 @@ import jax
 import jax.numpy as jnp
 
 from ..inner import InnerSolver, minimise
+from .base import positive_number
 
 __all__ = ["ImplicitLangevin", "ImplicitState", "default_solver"]
 
@@ -83,11 +83,7 @@ class ImplicitState(NamedTuple):
 
 def _check_common(stepper: Any) -> None:
     """Validate ``step_size`` and ``solver`` of an implicit stepper (shared with JKO)."""
-    h = stepper.step_size
-    if isinstance(h, bool) or not isinstance(h, (int, float)):
-        raise TypeError(f"step_size: expected a positive float; got {type(h).__name__}")
-    if not (math.isfinite(float(h)) and float(h) > 0):
-        raise ValueError(f"step_size: must be a positive finite number; got {h}")
+    positive_number("step_size", stepper.step_size)
     if stepper.solver is not None and not isinstance(stepper.solver, InnerSolver):
         raise TypeError(
             "solver: expected None or a flowpost.inner.InnerSolver (e.g. InnerSolver(tol=1e-5, "

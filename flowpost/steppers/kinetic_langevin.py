@@ -29,6 +29,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from .base import positive_number
 from .split import Drift, Friction, Kick, Split, SplitState
 
 __all__ = ["KineticLangevin"]
@@ -53,13 +54,7 @@ class KineticLangevin:
 
     def __post_init__(self):
         for name in ("step_size", "friction"):
-            value = getattr(self, name)
-            try:
-                v = float(value)
-            except (TypeError, ValueError):
-                raise TypeError(f"{name}: must be a positive number; got {value!r}") from None
-            if not v > 0 or v == float("inf"):
-                raise ValueError(f"{name}: must be a positive finite number; got {value!r}")
+            positive_number(name, getattr(self, name))
 
     @property
     def scheme(self) -> Split:

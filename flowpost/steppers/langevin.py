@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 
-from .base import ParticleState
+from .base import ParticleState, positive_number
 
 __all__ = ["Langevin"]
 
@@ -38,8 +38,7 @@ class Langevin:
     step_size: float = 1e-3
 
     def __post_init__(self):
-        if not float(self.step_size) > 0:
-            raise ValueError(f"step_size: must be positive; got {self.step_size}")
+        positive_number("step_size", self.step_size)
 
     def start(self, target, x, key) -> ParticleState:
         return ParticleState(x=x)

@@ -43,6 +43,8 @@ import jax.numpy as jnp
 import numpy as np
 from jax.scipy.stats import norm
 
+from .base import positive_number
+
 __all__ = ["MALA", "MALAState"]
 
 
@@ -90,8 +92,7 @@ class MALA:
     tune_gain: float = 1.0
 
     def __post_init__(self):
-        if not float(self.step_size) > 0 or not np.isfinite(float(self.step_size)):
-            raise ValueError(f"step_size: must be a positive finite number; got {self.step_size}")
+        positive_number("step_size", self.step_size)
         if isinstance(self.tune_steps, bool) or int(self.tune_steps) != self.tune_steps or self.tune_steps < 0:
             raise ValueError(f"tune_steps: must be a non-negative integer; got {self.tune_steps!r}")
         if not 0.0 < float(self.target_accept) < 1.0:

@@ -42,7 +42,7 @@ import jax
 import jax.numpy as jnp
 
 from ..prox import ProxTerm, UserProx
-from .base import ParticleState
+from .base import ParticleState, positive_number
 from .split import Explicit, HeatFlow, Proximal, Split
 
 __all__ = ["ProximalLangevin"]
@@ -120,11 +120,4 @@ class ProximalLangevin:
         return ParticleState(x=x_new), {"grad_evals": jnp.ones((), x.dtype)}
 
 
-def _positive(name, value) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise TypeError(f"{name}: must be a positive number; got {value!r}") from None
-    if not v > 0 or v == float("inf"):
-        raise ValueError(f"{name}: must be a positive finite number; got {value!r}")
-    return v
+_positive = positive_number

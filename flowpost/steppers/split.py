@@ -90,6 +90,7 @@ import jax.numpy as jnp
 
 from ..inner import InnerSolver
 from ..prox import ProxTerm, UserProx, prox_by_solver
+from .base import positive_number
 
 __all__ = [
     "Split", "SplitState", "SubStep", "StepContext",
@@ -521,12 +522,7 @@ class Split:
         object.__setattr__(self, "parts", tuple(parts))
         if self.order not in ("lie", "strang"):
             raise ValueError(f"order: expected 'lie' or 'strang'; got {self.order!r}")
-        try:
-            h = float(self.step_size)
-        except (TypeError, ValueError):
-            raise TypeError(f"step_size: must be a positive number; got {self.step_size!r}") from None
-        if not h > 0 or h == float("inf"):
-            raise ValueError(f"step_size: must be a positive finite number; got {self.step_size!r}")
+        positive_number("step_size", self.step_size)
 
     # ----- static structure ----------------------------------------------------------
     @property

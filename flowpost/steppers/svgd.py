@@ -35,10 +35,9 @@ from dataclasses import dataclass, field
 
 import jax
 import jax.numpy as jnp
-import numpy as np
 
 from ..kernels import DEFAULT_BLOCK, IMQ, RBF, RadialKernel, interaction_means
-from .base import ScoredState
+from .base import ScoredState, positive_number
 
 __all__ = ["SVGD"]
 
@@ -87,8 +86,7 @@ class SVGD:
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
 
     def __post_init__(self):
-        if not float(self.step_size) > 0 or not np.isfinite(float(self.step_size)):
-            raise ValueError(f"step_size: must be a positive finite number; got {self.step_size}")
+        positive_number("step_size", self.step_size)
         object.__setattr__(self, "kernel", _as_kernel(self.kernel))
         if isinstance(self.block, bool) or not isinstance(self.block, int) or self.block < 1:
             raise ValueError(f"block: must be a positive int; got {self.block!r}")
