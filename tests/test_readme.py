@@ -20,6 +20,7 @@ def test_readme_script_runs(tmp_path):
         os.chdir(here)
     result, again = scope["result"], scope["again"]
     assert result.ok and again.summary() == result.summary()
-    # the log was generated with k = 0.42 per hour (flowpost/demo.py); 24 readings pin it to about 1%
+    # the log was generated with k = 0.42 per hour (flowpost/demo.py): the true value lies
+    # within 4 posterior standard deviations of the posterior mean (about 0.004 each)
     k = np.asarray(result.particles["k"])
-    assert abs(k.mean() - 0.42) < 4 * k.std() + 0.01
+    assert abs(k.mean() - 0.42) < 4 * k.std()
