@@ -37,11 +37,11 @@ import numpy as np
 from jax.scipy.stats import norm
 
 import flowpost as fp
-from flowpost.steppers.implicit_langevin import ImplicitLangevin
-from flowpost.steppers.jko import JKO
+from flowpost.steppers import ImplicitLangevin
+from flowpost.steppers import JKO
 
 try:
-    from flowpost.steppers.mala import MALA
+    from flowpost.steppers import MALA
 except ImportError:  # pragma: no cover - optional stepper
     MALA = None
 
@@ -79,8 +79,8 @@ class CovarianceWatch(fp.Monitor):
         super().open(target, stepper, state)
         self.evals = 0.0
 
-    def read(self, target, stepper, state, stats, tape, step, elapsed):
-        rec = super().read(target, stepper, state, stats, tape, step, elapsed)
+    def read(self, target, stepper, state, stats, tape, step, elapsed, **window):
+        rec = super().read(target, stepper, state, stats, tape, step, elapsed, **window)
         x = np.asarray(state.x)
         rec["cov_err"] = cov_error(x, self.w) if np.all(np.isfinite(x)) else float("inf")
         self.evals += rec.get("grad_evals", 0.0)
@@ -116,7 +116,7 @@ def one_run(target, w, stepper, window, x0, eval_budget, time_budget, max_steps)
         "reached": reached,
         "why": "level reached" if reached else (r.reason if r.status != "done" else "step budget"),
         "steps": r.steps,
-        "flow_time": r.steps * stepper.step_size,
+        "flow_time": float(recs[-1]["flow_time"]) if recs else 0.0,
         "evals": last.get("evals_total", float("nan")),
         "wall": wall,
         "err": last.get("cov_err", float("nan")),

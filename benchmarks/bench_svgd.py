@@ -73,7 +73,7 @@ def _library_loop(stepper, target, steps):
     @jax.jit
     def loop(state):
         def body(st, t):
-            return stepper.advance(target, st, jax.random.fold_in(jax.random.key(1), t))[0], None
+            return stepper.advance(target, st, jax.random.fold_in(jax.random.key(1), t), jnp.asarray(stepper.step_size))[0], None
         return jax.lax.scan(body, state, jnp.arange(steps))[0]
     return loop
 
@@ -102,8 +102,8 @@ def _best_times(fns_args, repeats):
 
 
 def time_comparison(n, d, steps, repeats, bandwidth):
-    from flowpost.kernels import RBF
-    from flowpost.steppers.svgd import SVGD
+    from flowpost.numerics import RBF
+    from flowpost.steppers import SVGD
 
     h = 0.1
     target, x = _setup(n, d)
@@ -112,7 +112,7 @@ def time_comparison(n, d, steps, repeats, bandwidth):
     lib = _library_loop(stepper, target, steps)
     full = _full_loop(target, steps, h, bandwidth)
     # same update: one step of each from the same ensemble agrees
-    one_lib = jax.jit(lambda s: stepper.advance(target, s, jax.random.key(1))[0].x)(state)
+    one_lib = jax.jit(lambda s: stepper.advance(target, s, jax.random.key(1), jnp.asarray(h))[0].x)(state)
     one_full = jax.jit(lambda x: full_matrix_step(target, x, h, bandwidth))(x)
     diff = float(jnp.max(jnp.abs(one_lib - one_full)))
     t_lib, t_full = (t / steps for t in _best_times([(lib, state), (full, x)], repeats))
@@ -124,7 +124,7 @@ _MEM_CHILD = """
 import json, resource, sys, jax, jax.numpy as jnp
 sys.path.insert(0, {here!r})
 from bench_svgd import _setup, full_matrix_step
-from flowpost.steppers.svgd import SVGD
+from flowpost.steppers import SVGD
 n, d, variant = {n}, {d}, {variant!r}
 target, x = _setup(n, d)
 stepper = SVGD(step_size=0.1)
@@ -132,7 +132,7 @@ state = stepper.start(target, x, jax.random.key(0))
 jax.block_until_ready(state)
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 if variant == "library":
-    out = jax.jit(lambda s: stepper.advance(target, s, jax.random.key(1))[0].x)(state)
+    out = jax.jit(lambda s: stepper.advance(target, s, jax.random.key(1), jnp.asarray(0.1))[0].x)(state)
 else:
     out = jax.jit(lambda x: full_matrix_step(target, x, 0.1))(x)
 jax.block_until_ready(out)

@@ -27,8 +27,8 @@ import jax.scipy.stats as jst
 import numpy as np
 
 import flowpost as fp
-from flowpost.prox import L1Penalty
-from flowpost.steppers.proximal_langevin import ProximalLangevin
+from flowpost.numerics.prox import L1Penalty
+from flowpost.steppers import ProximalLangevin
 
 SENSORS = [
     "soil_moisture_bed_a", "soil_moisture_bed_b", "air_temp_north", "air_temp_south",

@@ -22,6 +22,11 @@ them):
   posterior, in Monte-Carlo standard errors;
 - ``fp_key``: a fixed PRNG key.
 
+Where the score and health checks look is one value, a ``flowpost.testing.Region``:
+``Region.drawn(prior_draw)`` (points drawn from the prior) or ``Region.near(TYPICAL)``
+(Gaussian perturbations of a plausible point). The keywords ``sampler=`` / ``around=``
+(with ``scale=``, ``num_points=``, ``key=``) are a shortcut for the same region.
+
 Two tests plant a bug on purpose and check that the kit catches it: a test kit that cannot
 fail tells you nothing.
 
@@ -33,6 +38,7 @@ import jax.scipy.stats as jst
 import pytest
 
 import flowpost as fp
+from flowpost.testing import Region
 
 PRIOR_MU_MEAN, PRIOR_MU_SD = 6.0, 2.0          # hours
 PRIOR_SIGMA_SHAPE, PRIOR_SIGMA_RATE = 9.0, 12.0  # Gamma(shape, rate) on sigma, in hours
@@ -41,6 +47,7 @@ N_MORNINGS = 12
 # twelve mornings of the bakery's notebook: hours until the starter doubled
 DATA = {"hours": jnp.array([5.9, 6.4, 5.2, 6.8, 6.1, 5.5, 7.0, 6.3, 5.8, 6.6, 6.0, 5.4])}
 TYPICAL = {"mu": 6.0, "sigma": 0.75}          # a plausible point, to centre the checks on
+NEAR_TYPICAL = Region.near(TYPICAL, scale=0.1)  # where to look: written once, used by every check
 SUPPORT = {"sigma": fp.Positive()}
 
 
@@ -73,8 +80,10 @@ def test_score_matches_finite_differences(fp_score_check):
     # 16 points drawn from the prior: the gradient is checked where the posterior may go, not
     # only at one convenient point. Fails when an element's relative error exceeds
     # --flowpost-score-tol (default 1e-4); a correct gradient gives about 1e-9.
-    report = fp_score_check(log_p, data=DATA, sampler=prior_draw)
+    report = fp_score_check(log_p, Region.drawn(prior_draw), data=DATA)
     assert report.num_points == 16
+    # the keyword shortcut for the same region checks the same points
+    assert fp_score_check(log_p, data=DATA, sampler=prior_draw).worst_error == report.worst_error
 
 
 @jax.custom_jvp
@@ -102,12 +111,12 @@ def test_planted_wrong_gradient_is_caught(fp_score_check):
     # the values agree with log_p (only the derivative is wrong), so only the score check sees it
     assert jnp.allclose(_log_p_with_wrong_gradient(TYPICAL, DATA), log_p(TYPICAL, DATA), rtol=1e-5)
     with pytest.raises(AssertionError, match="parameter 'sigma'"):
-        fp_score_check(_log_p_with_wrong_gradient, data=DATA, around=TYPICAL)
+        fp_score_check(_log_p_with_wrong_gradient, NEAR_TYPICAL, data=DATA)
 
 
 # ----------------------------------------------------------------------------- 2. health
 def test_health(fp_health_check):
-    report = fp_health_check(log_p, data=DATA, around=TYPICAL, exchangeable=True)
+    report = fp_health_check(log_p, NEAR_TYPICAL, data=DATA, exchangeable=True)
     assert set(report.results) == {"scalar", "finite", "jit", "vmap", "deterministic", "exchangeable"}
 
 
@@ -116,7 +125,7 @@ def test_planted_row_bug_is_caught(fp_health_check):
         # planted bug: the first row was taken for a header and dropped
         return log_p(theta, {"hours": data["hours"][1:]})
 
-    report = fp_health_check(log_p_skipping_first_morning, data=DATA, around=TYPICAL,
+    report = fp_health_check(log_p_skipping_first_morning, NEAR_TYPICAL, data=DATA,
                              exchangeable=True, check=False)
     assert list(report.failures) == ["exchangeable"]
     assert "data rows are permuted" in report.failures["exchangeable"]

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 import flowpost as fp
-from flowpost.discrepancy import stein_discrepancy
+from flowpost.diagnostics import stein_discrepancy
 
 MEAN = jnp.array([1.0, -1.0])
 COV = jnp.array([[1.0, 0.5], [0.5, 1.0]])
@@ -49,7 +49,53 @@ def test_every_stepper_under_the_default_monitor(stepper):
     last = r.history.last
     for name in ("ksd", "mean_logp", "centre_drift", "grad_evals"):
         assert name in last, name
-    assert ("rhat" in last) == bool(getattr(stepper, "stochastic", True))
+    assert ("rhat" in last) == stepper.stochastic  # a declaration every stepper makes
     start_ksd = float(stein_discrepancy(x0, jax.vmap(jax.grad(log_p))(x0)))
     assert last["ksd"] < 0.5 * start_ksd, (start_ksd, last["ksd"])
     assert np.all(np.abs(r.unconstrained.mean(0) - np.asarray(MEAN)) < 0.4), r.unconstrained.mean(0)
+
+
+def test_the_list_covers_every_library_stepper():
+    assert sorted(type(s).__name__ for s in STEPPERS) == sorted(fp.steppers.LIBRARY_STEPPERS)
+
+
+#: What each library stepper must declare: deterministic flows get no R-hat / ESS.
+EXPECTED_STOCHASTIC = {
+    "Langevin": True, "MALA": True, "SVGD": False, "BlobFlow": False, "EnsembleLangevin": True,
+    "ImplicitLangevin": True, "JKO": False, "ForwardBackward": False, "ProximalLangevin": True,
+    "KineticLangevin": True, "Split": True,
+}
+
+
+@pytest.mark.parametrize("stepper", STEPPERS, ids=lambda s: type(s).__name__)
+def test_every_stepper_declares_stochastic_and_reductions(stepper):
+    assert stepper.stochastic is EXPECTED_STOCHASTIC[type(stepper).__name__]
+    red = dict(stepper.reductions)
+    assert red["grad_evals"] == "sum"
+    assert set(red.values()) <= {"sum", "mean", "max"}
+
+
+def test_a_stepper_missing_a_declaration_is_refused():
+    @fp.pytree_dataclass
+    class NoDeclarations(fp.Stepper):
+        step_size: float = 0.1
+
+        def start(self, target, x, key):
+            return fp.ParticleState(x=x)
+
+        def advance(self, target, state, key, h):
+            return state, {"grad_evals": jnp.zeros(())}
+
+    with pytest.raises(TypeError, match=r"stepper: expected NoDeclarations to declare `stochastic`"):
+        fp.run(log_p, NoDeclarations(), jnp.zeros((8, 2)), key=jax.random.key(0), steps=1, progress=False)
+
+    @fp.pytree_dataclass
+    class UndeclaredStat(NoDeclarations):
+        stochastic = False
+        reductions = {"grad_evals": "sum"}
+
+        def advance(self, target, state, key, h):
+            return state, {"grad_evals": jnp.zeros(()), "surprise": jnp.ones(())}
+
+    with pytest.raises(TypeError, match=r"undeclared \['surprise'\]"):
+        fp.run(log_p, UndeclaredStat(), jnp.zeros((8, 2)), key=jax.random.key(0), steps=1, progress=False)

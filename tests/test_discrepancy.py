@@ -1,4 +1,4 @@
-"""Tests of flowpost.discrepancy: the kernel Stein discrepancy (KSD).
+"""Tests of flowpost.diagnostics: the kernel Stein discrepancy (KSD).
 
 Source throughout: "Measuring sample quality with kernels" (2017) for the
 Stein kernel and the IMQ choice; the expectation of a V-statistic on exact
@@ -18,8 +18,8 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from flowpost.discrepancy import squared_stein_discrepancy, stein_discrepancy, stein_kernel
-from flowpost.kernels import IMQ, RBF
+from flowpost.diagnostics import squared_stein_discrepancy, stein_discrepancy, stein_kernel
+from flowpost.numerics import IMQ, RBF
 
 
 # --------------------------------------------------------------------------
@@ -229,3 +229,33 @@ def test_no_n_by_n_buffer():
         best = max(best, int(np.prod(dims)) if dims else 1)
     assert best <= block * n, best
     assert compiled.memory_analysis().temp_size_in_bytes < n * n
+
+
+def test_kernel_is_a_traced_argument_of_the_discrepancy():
+    # The kernel is a pytree: a new IMQ scale / power or RBF bandwidth does not recompile.
+    traces = []
+
+    @jax.jit
+    def vstat(kernel, x, s):
+        traces.append(1)  # runs once per trace
+        return squared_stein_discrepancy(x, s, kernel, block=8)
+
+    with jax.enable_x64(True):
+        rng = np.random.default_rng(11)
+        x = jnp.asarray(rng.normal(size=(21, 2)))
+        s = jnp.asarray(rng.normal(size=(21, 2)))
+        for kernel, k in CASES[:3]:  # three IMQ kernels, one compiled program
+            got = float(vstat(kernel, x, s))
+            assert got == pytest.approx(brute_force_vstat(k, x, s), rel=1e-11)
+        assert len(traces) == 1
+        traces.clear()
+        for h in (0.8, 1.3):
+            got = float(vstat(RBF(h), x, s))
+            assert got == pytest.approx(brute_force_vstat(rbf_value(h), x, s), rel=1e-11)
+        assert len(traces) == 1
+
+
+def test_stein_kernel_refuses_a_non_kernel_by_name():
+    x = jnp.zeros((4, 2))
+    with pytest.raises(TypeError, match="kernel"):
+        stein_kernel(x, x, x, x, "imq")

@@ -45,7 +45,7 @@ def test_checkpoint_then_resume_equals_uninterrupted(tmp_path):
     assert rest.steps == 600
     np.testing.assert_array_equal(rest.unconstrained, full.unconstrained)
     assert [r["step"] for r in rest.history] == [r["step"] for r in full.history]
-    with pytest.raises(ValueError, match="resume: the checkpoint was written by"):
+    with pytest.raises(ValueError, match=r"resume: .*differs in .*stepper\.step_size"):
         fp.run(log_p, fp.Langevin(step_size=0.1), _init(), key=jax.random.key(8), steps=600, resume=ck,
                progress=False)
 
@@ -69,7 +69,7 @@ def test_halving_the_step_finishes():
                window=25, progress=False, on_blowup="halve")
     assert r.status == "done" and r.steps == 400
     assert np.all(np.isfinite(r.unconstrained))
-    assert r.stepper.step_size < 2.0 and r.events
+    assert r.report["step_size"] < 2.0 and r.report["halvings"] >= 1 and r.events
 
 
 class _InterruptingMonitor(fp.Monitor):
@@ -149,7 +149,7 @@ def test_load_rejects_foreign_and_truncated_files(tmp_path):
 
 def test_evolve_matches_run():
     """The pure, vmappable evolve() uses run()'s key stream."""
-    from flowpost.driver import evolve
+    from flowpost.engine import evolve
 
     r = fp.run(log_p, fp.Langevin(step_size=0.05), _init(), key=jax.random.key(6), steps=120, window=40,
                progress=False)

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 import flowpost as fp
-from flowpost.steppers.ensemble_langevin import EnsembleLangevin
+from flowpost import EnsembleLangevin
 
 
 def _banana(x, data):
@@ -60,15 +60,16 @@ _STEPPER = EnsembleLangevin(step_size=0.02)
 
 
 @partial(jax.jit, static_argnames=("steps",))
-def _trajectory(target, x0, key, root_inv, steps):
-    """Whitened covariance error after each of ``steps`` steps (one compiled scan)."""
+def _trajectory(stepper, target, x0, key, root_inv, h, steps):
+    """Whitened covariance error after each of ``steps`` steps of length ``h`` (one compiled
+    scan)."""
     mean = target.data["mean"]
 
     def body(st, t):
-        st, _ = _STEPPER.advance(target, st, jax.random.fold_in(key, t))
+        st, _ = stepper.advance(target, st, jax.random.fold_in(key, t), h)
         return st, _whitened_cov_error(st.x, root_inv, mean)
 
-    return jax.lax.scan(body, _STEPPER.start(target, x0, key), jnp.arange(steps))[1]
+    return jax.lax.scan(body, stepper.start(target, x0, key), jnp.arange(steps))[1]
 
 
 def _steps_to_reach(cond, seed, n=500, steps=150, tol=0.3):
@@ -84,8 +85,9 @@ def _steps_to_reach(cond, seed, n=500, steps=150, tol=0.3):
     z0 = jax.random.normal(jax.random.key(seed), (n, 2))
     x0 = data["mean"] + (3.0 * z0 + jnp.array([2.0, -2.0])) @ jnp.asarray(root, jnp.float32).T
     target, x0 = fp.Target(_gaussian_log_p, data=data).bind(x0)
-    err = np.asarray(_trajectory(target, x0, jax.random.key(100 + seed),
-                                 jnp.asarray(np.linalg.inv(root), jnp.float32), steps))
+    err = np.asarray(_trajectory(_STEPPER, target, x0, jax.random.key(100 + seed),
+                                 jnp.asarray(np.linalg.inv(root), jnp.float32),
+                                 jnp.asarray(_STEPPER.step_size, jnp.float32), steps))
     below = np.nonzero(err < tol)[0]
     assert below.size, f"never reached the tolerance; final error {err[-1]:.3g}"
     return int(below[0]) + 1, err
@@ -102,7 +104,7 @@ def test_speed_independent_of_conditioning():
     1 + h/2 per whitened direction; Monte-Carlo noise of N = 500: about sqrt(3/N) = 0.08),
     below 0.3."""
     for seed in (1, 2):
-        n1, err1 = _steps_to_reach(1.0, seed=seed)
+        n1, _ = _steps_to_reach(1.0, seed=seed)
         n2, err2 = _steps_to_reach(1e4, seed=seed)
         assert abs(n1 - n2) <= 0.2 * max(n1, n2), (seed, n1, n2)
         assert n1 > 20  # the start really was far from the target
@@ -180,7 +182,7 @@ def test_finite_n_correction_keeps_product_measure_invariant():
     def run_all(x0s, keys):
         def one(x0, key):
             def body(st, t):
-                return stepper.advance(target, st, jax.random.fold_in(key, t))[0], None
+                return stepper.advance(target, st, jax.random.fold_in(key, t), jnp.asarray(h, x0.dtype))[0], None
             return jax.lax.scan(body, stepper.start(target, x0, key), jnp.arange(steps))[0].x
         return jax.vmap(one)(x0s, keys)
 
@@ -196,3 +198,9 @@ def test_bad_arguments():
         EnsembleLangevin(step_size=-1.0)
     with pytest.raises(ValueError, match="block"):
         EnsembleLangevin(step_size=0.1, block=0)
+    with pytest.raises(TypeError, match="block: expected an integer"):
+        EnsembleLangevin(block=2.5)
+    with pytest.raises(ValueError, match="step_size: expected"):
+        EnsembleLangevin(step_size=float("inf"))
+    assert EnsembleLangevin.stochastic is True
+    assert jax.tree_util.tree_leaves(EnsembleLangevin(step_size=0.3, block=7)) == [0.3]

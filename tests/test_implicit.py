@@ -17,9 +17,9 @@ from scipy.optimize import brentq
 from scipy.stats import norm as sp_norm
 
 import flowpost as fp
-from flowpost.inner import InnerSolver
-from flowpost.steppers.implicit_langevin import ImplicitLangevin, default_solver
-from flowpost.steppers.jko import JKO
+from flowpost.numerics import InnerSolver
+from flowpost.steppers import ImplicitLangevin, default_solver
+from flowpost.steppers import JKO
 
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 

@@ -1,4 +1,4 @@
-"""Tests of the optax-based inner minimiser (flowpost.inner).
+"""Tests of the optax-based inner minimiser (flowpost.numerics.minimise).
 
 References used below (never computed by the code under test):
 - numpy.linalg.solve for the minimiser A^{-1} b of 0.5 x^T A x - b^T x;
@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 import scipy.optimize
 
-from flowpost.inner import InnerSolver, SolveReport, minimise
+from flowpost.numerics import InnerSolver, SolveReport, minimise
 
 
 def spd_matrix(d: int, cond: float, seed: int) -> np.ndarray:
@@ -245,13 +245,13 @@ def test_bad_config_raises(kwargs, exc, word):
 
 
 def test_bad_inputs_raise():
-    with pytest.raises(ValueError, match="fun must return a real floating-point scalar"):
+    with pytest.raises(ValueError, match="fun: expected a function returning a real floating-point scalar"):
         minimise(InnerSolver(), lambda x: x**2, jnp.ones(3))
-    with pytest.raises(TypeError, match="x0 must have floating-point leaves"):
+    with pytest.raises(TypeError, match="x0: expected floating-point leaves"):
         minimise(InnerSolver(), lambda x: jnp.sum(x), jnp.ones(3, jnp.int32))
-    with pytest.raises(TypeError, match="solver must be an InnerSolver"):
+    with pytest.raises(TypeError, match="solver: expected an InnerSolver"):
         minimise({"tol": 1e-6}, lambda x: jnp.sum(x**2), jnp.ones(3))
-    with pytest.raises(ValueError, match="x0 must contain at least one array leaf"):
+    with pytest.raises(ValueError, match="x0: expected a pytree with at least one array leaf"):
         minimise(InnerSolver(), lambda x: 0.0, {})
 
 
@@ -260,7 +260,7 @@ def test_float32_stall_stops_early_and_is_reported_capped():
     step after step. The loop stops after STALL_PATIENCE iterations without progress (not at
     max_iters = 500, which would cost up to 500 x 20 line-search evaluations) and reports the
     solve as capped, with the residual above tol."""
-    from flowpost.inner import STALL_PATIENCE
+    from flowpost.numerics._inner import STALL_PATIENCE
 
     a = jnp.array([1e4, 1.0, 3.0], jnp.float32)
 
@@ -277,3 +277,106 @@ def test_float32_stall_stops_early_and_is_reported_capped():
     # (|f| ~ 1e3, eps ~ 1.2e-7, curvature up to 1e4: sqrt(2 eps |f| L) ~ 0.5)
     assert float(rep.residual) < 0.5
     assert STALL_PATIENCE >= 2
+
+
+# --------------------------------------------------------------------------
+# the solver as a pytree: numbers traced, structure static
+# --------------------------------------------------------------------------
+
+def test_solver_is_a_pytree_with_numbers_as_leaves():
+    solver = InnerSolver(method="lbfgs", tol=1e-5, max_iters=77, memory_size=7, linesearch_steps=13)
+    leaves = jax.tree_util.tree_leaves(solver)
+    assert leaves == [1e-5, 77]  # learning_rate=None is an empty subtree
+    # structural fields are not leaves (compare by identity of value: 7 and 13 are absent)
+    assert 7 not in leaves and 13 not in leaves and "lbfgs" not in leaves
+    with_lr = InnerSolver(method="adam", learning_rate=0.25, tol=1e-5)
+    assert jax.tree_util.tree_leaves(with_lr) == [1e-5, 50, 0.25]
+    # a structural field changes the tree structure, a number does not
+    tree = jax.tree_util.tree_structure
+    assert tree(InnerSolver(tol=1e-5)) == tree(InnerSolver(tol=1e-3, max_iters=9))
+    assert tree(InnerSolver(memory_size=5)) != tree(InnerSolver(memory_size=6))
+    assert tree(InnerSolver(method="adam", learning_rate=0.1)) != tree(InnerSolver(method="sgd", learning_rate=0.1))
+    # round trip through flatten / unflatten keeps the configuration
+    leaves, treedef = jax.tree_util.tree_flatten(with_lr)
+    assert jax.tree_util.tree_unflatten(treedef, leaves) == with_lr
+
+
+def _quadratic_3(x):
+    return 0.5 * jnp.sum(jnp.asarray([1.0, 2.0, 4.0]) * (x - 1.0) ** 2)
+
+
+def test_solver_as_jit_argument_compiles_once_for_new_numbers():
+    traces = []
+
+    @jax.jit
+    def solve(solver, x0):
+        traces.append(1)  # runs once per trace, not per call
+        return minimise(solver, _quadratic_3, x0)
+
+    x0 = jnp.zeros(3)
+    results = {}
+    for tol, max_iters in ((1e-3, 40), (1e-6, 60), (1e-4, 2)):
+        solver = InnerSolver(tol=tol, max_iters=max_iters)
+        results[(tol, max_iters)] = (solve(solver, x0), minimise(solver, _quadratic_3, x0))
+    assert len(traces) == 1
+    for (_tol, max_iters), ((x, rep), (x_ref, rep_ref)) in results.items():
+        # traced numbers give the same solve as the concrete (unjitted) solver
+        assert int(rep.iters) == int(rep_ref.iters) and bool(rep.converged) == bool(rep_ref.converged)
+        np.testing.assert_allclose(np.asarray(x), np.asarray(x_ref), rtol=1e-6, atol=1e-7)
+        assert int(rep.iters) <= max_iters
+    assert int(results[(1e-4, 2)][0][1].iters) == 2  # the traced cap is honoured
+    assert bool(results[(1e-6, 60)][0][1].converged)
+
+    # a traced learning rate: first-order methods and L-BFGS with a fixed rate
+    for method in ("sgd", "lbfgs"):
+        traces.clear()
+        outs = [solve(InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300), x0)
+                for lr in (0.1, 0.2)]
+        assert len(traces) == 1, method
+        for (x, rep), lr in zip(outs, (0.1, 0.2)):
+            ref_x, ref_rep = minimise(InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300),
+                                      _quadratic_3, x0)
+            assert int(rep.iters) == int(ref_rep.iters)
+            np.testing.assert_allclose(np.asarray(x), np.asarray(ref_x), rtol=1e-6, atol=1e-7)
+        assert int(outs[0][1].iters) != int(outs[1][1].iters)  # the rate really changed
+
+
+def test_vmapped_sweep_over_solver_numbers():
+    # plain gradient descent on 0.5 a (x - 1)^2 from 0: |grad| after k steps is
+    # a |1 - lr a|^k exactly, so the count to reach tol is ceil(log(tol / a) / log|1 - lr a|)
+    # ("Numerical Optimization" (2006), ch. 3).
+    a, lrs, tols = 2.0, np.array([0.1, 0.2, 0.3]), np.array([1e-3, 1e-5, 1e-7])
+    with jax.enable_x64(True):
+        solvers = [InnerSolver(method="sgd", learning_rate=lr, tol=t, max_iters=500) for lr, t in zip(lrs, tols)]
+        stacked = jax.tree.map(lambda *v: jnp.asarray(v), *solvers)
+        fun = lambda x: 0.5 * a * jnp.sum((x - 1.0) ** 2)  # noqa: E731
+        x, rep = jax.jit(jax.vmap(lambda s: minimise(s, fun, jnp.zeros(1))))(stacked)
+    np.testing.assert_allclose(np.asarray(x)[:, 0], 1.0, atol=np.max(tols) / a * 1.01)  # |x - 1| = |grad| / a
+    k_real = np.log(tols / a) / np.log(np.abs(1.0 - lrs * a))
+    assert np.all(np.abs(k_real - np.round(k_real)) > 1e-6)  # not on an integer boundary
+    np.testing.assert_array_equal(np.asarray(rep.iters), np.ceil(k_real).astype(int))
+    assert np.all(np.asarray(rep.converged))
+
+
+@pytest.mark.parametrize(
+    "kwargs, exc, name",
+    [
+        ({"tol": math.inf}, ValueError, "tol"),
+        ({"tol": math.nan}, ValueError, "tol"),
+        ({"tol": "1e-5"}, TypeError, "tol"),
+        ({"tol": True}, TypeError, "tol"),
+        ({"max_iters": True}, TypeError, "max_iters"),
+        ({"max_iters": 50.0}, TypeError, "max_iters"),
+        ({"max_iters": "50"}, TypeError, "max_iters"),
+        ({"method": "sgd", "learning_rate": math.inf}, ValueError, "learning_rate"),
+        ({"method": "sgd", "learning_rate": math.nan}, ValueError, "learning_rate"),
+        ({"method": "sgd", "learning_rate": "0.1"}, TypeError, "learning_rate"),
+        ({"method": "sgd", "learning_rate": False}, TypeError, "learning_rate"),
+        ({"memory_size": True}, TypeError, "memory_size"),
+        ({"linesearch_steps": 2.0}, TypeError, "linesearch_steps"),
+        ({"method": 3}, TypeError, "method"),
+    ],
+)
+def test_non_finite_strings_and_bools_are_refused(kwargs, exc, name):
+    with pytest.raises(exc, match=rf"^{name}: expected .*; got "):
+        InnerSolver(**kwargs)

@@ -25,9 +25,8 @@ import pytest
 from jax.scipy.special import logsumexp
 
 import flowpost as fp
-from flowpost.kernels import IMQ, RBF
-from flowpost.steppers.blob import BlobFlow
-from flowpost.steppers.svgd import SVGD
+from flowpost import JKO, SVGD, BlobFlow
+from flowpost.numerics import IMQ, RBF
 
 MU = np.array([1.0, -1.0])
 SIGMA = np.array([[1.0, 0.5], [0.5, 0.8]])  # correlation 0.56
@@ -207,7 +206,7 @@ _MEMORY_SCRIPT = textwrap.dedent(
     """
     import resource, jax, jax.numpy as jnp
     import flowpost as fp
-    from flowpost.steppers.svgd import SVGD
+    from flowpost import SVGD
     n, d = 20_000, 10
     target, x = fp.Target(lambda u: -0.5 * jnp.sum(u * u)).bind(jnp.zeros((2, d)))
     x = jax.random.normal(jax.random.key(0), (n, d))
@@ -215,7 +214,8 @@ _MEMORY_SCRIPT = textwrap.dedent(
     state = stepper.start(target, x, jax.random.key(1))
     jax.block_until_ready(state)
     before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    new, _ = jax.jit(lambda s: stepper.advance(target, s, jax.random.key(2)))(state)
+    step = jax.jit(lambda st, s, h: st.advance(target, s, jax.random.key(2), h))
+    new, _ = step(stepper, state, jnp.asarray(stepper.step_size, x.dtype))
     jax.block_until_ready(new)
     after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     print((after - before) * 1024)
@@ -248,3 +248,29 @@ def test_bad_arguments():
         SVGD(step_size=0.0)
     assert isinstance(SVGD(step_size=0.1, kernel="imq").kernel, IMQ)
     assert isinstance(SVGD(step_size=0.1).kernel, RBF)
+    # no inf / nan, no silent coercion; every message names the argument
+    with pytest.raises(ValueError, match="bandwidth_factor: expected"):
+        BlobFlow(bandwidth_factor=float("inf"))
+    with pytest.raises(ValueError, match="bandwidth: expected"):
+        BlobFlow(bandwidth=float("nan"))
+    with pytest.raises(TypeError, match="block: expected an integer"):
+        SVGD(block=2.5)
+    with pytest.raises(TypeError, match="batch: expected an integer"):
+        SVGD(batch=True)
+    with pytest.raises(TypeError, match="block: expected an integer"):
+        BlobFlow(block="16")
+    with pytest.raises(TypeError, match="kernel: expected"):
+        SVGD(kernel=RBF)  # the class, not an instance
+    with pytest.raises(TypeError, match="form: expected"):
+        BlobFlow(form=None)
+
+
+def test_deterministic_flows_declare_it():
+    """SVGD, the blob flow and JKO draw no noise (random batches aside), so the monitor skips
+    R-hat and ESS for them; their numbers are traced leaves and their structure static."""
+    for cls in (SVGD, BlobFlow, JKO):
+        assert cls.stochastic is False
+        assert cls().stochastic is False
+        assert cls.reductions["grad_evals"] == "sum"
+    assert jax.tree_util.tree_leaves(SVGD(step_size=0.3, kernel=IMQ(scale=2.0), block=8)) == [0.3, 2.0, -0.5]
+    assert jax.tree_util.tree_leaves(BlobFlow(step_size=0.3, bandwidth_factor=0.5, form="density")) == [0.3, 0.5]

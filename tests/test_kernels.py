@@ -1,4 +1,4 @@
-"""Tests of flowpost.kernels: kernels, bandwidth rules, blocked sums, KDE, random batches.
+"""Tests of the kernel numerics of flowpost.numerics: kernels, bandwidth rules, blocked sums, KDE, random batches.
 
 References are computed independently of the code under test: brute-force
 numpy with per-pair differences (the textbook derivatives of the two kernels
@@ -19,7 +19,7 @@ from scipy import stats
 from scipy.spatial.distance import pdist
 from scipy.special import logsumexp as np_logsumexp
 
-from flowpost.kernels import (
+from flowpost.numerics import (
     IMQ,
     RBF,
     grad_log_kde,
@@ -404,3 +404,109 @@ def test_blocked_computations_never_build_an_n_by_n_buffer():
         assert biggest <= block * n, (name, biggest)
         temp = compiled.memory_analysis().temp_size_in_bytes
         assert temp < 4 * n * n / 4, (name, temp)
+
+
+# --------------------------------------------------------------------------
+# kernels as pytrees: numbers traced, no recompilation for a new bandwidth
+# --------------------------------------------------------------------------
+
+def test_kernels_are_pytrees_with_numbers_as_leaves():
+    leaves = jax.tree_util.tree_leaves
+    assert leaves(RBF(0.5)) == [0.5]
+    assert leaves(RBF()) == []  # the median rule: bandwidth=None is an empty subtree
+    assert leaves(IMQ(2.0, -0.8)) == [2.0, -0.8]
+    tree = jax.tree_util.tree_structure
+    assert tree(RBF(0.5)) == tree(RBF(3.0)) and tree(RBF(0.5)) != tree(RBF())
+    leaves_, treedef = jax.tree_util.tree_flatten(IMQ(2.0, -0.8))
+    assert jax.tree_util.tree_unflatten(treedef, leaves_) == IMQ(2.0, -0.8)
+
+
+@pytest.mark.parametrize(
+    "first, second, kind",
+    [((RBF(0.5), (0.5,)), (RBF(0.9), (0.9,)), "rbf"),
+     ((IMQ(1.0, -0.5), (1.0, -0.5)), (IMQ(2.0, -0.8), (2.0, -0.8)), "imq")],
+)
+def test_jitted_function_taking_a_kernel_compiles_once(first, second, kind):
+    traces = []
+
+    @jax.jit
+    def sums(kernel, x, v):
+        traces.append(1)  # runs once per trace
+        return kernel_sums(kernel, x, v, block=7), kernel.value(x[0], x[1])
+
+    with jax.enable_x64(True):
+        x = _points(21, 19, 3)
+        v = _points(22, 19, 2)
+        for kernel, param in (first, second):
+            (a, b), k01 = sums(kernel, jnp.asarray(x), jnp.asarray(v))
+            a_ref, b_ref = np_sums(kind, param, x, v, x)  # brute-force numpy reference
+            np.testing.assert_allclose(a, a_ref, rtol=1e-10, atol=1e-12)
+            np.testing.assert_allclose(b, b_ref, rtol=1e-10, atol=1e-12)
+            np.testing.assert_allclose(k01, np_kernel(kind, param, x[0], x[1])[0], rtol=1e-12)
+    assert len(traces) == 1
+
+
+def test_kernel_numbers_traced_through_every_blocked_function():
+    traces = []
+
+    @jax.jit
+    def everything(kernel, x, v, key):
+        traces.append(1)
+        return (
+            interaction_means(kernel, x, v, block=8),
+            interaction_means(kernel, x, v, batch=5, key=key),
+            random_batch_sums(kernel, x, v, key, 5),
+        )
+
+    x = _points(23, 17, 2).astype(np.float32)
+    v = _points(24, 17, 2).astype(np.float32)
+    key = jax.random.key(6)
+    for kernel in (IMQ(1.0, -0.5), IMQ(1.5, -0.3)):
+        got = everything(kernel, x, v, key)
+        ref = (interaction_means(kernel, x, v, block=8), interaction_means(kernel, x, v, batch=5, key=key),
+               random_batch_sums(kernel, x, v, key, 5))
+        for g, r in zip(jax.tree.leaves(got), jax.tree.leaves(ref)):
+            assert g.dtype == r.dtype  # float32 kept with traced kernel numbers
+            np.testing.assert_allclose(np.asarray(g), np.asarray(r), rtol=1e-6, atol=1e-7)
+    assert len(traces) == 1
+
+
+def test_vmapped_sweep_over_bandwidths():
+    hs = np.array([0.4, 0.8, 1.6])
+    with jax.enable_x64(True):
+        stacked = jax.tree.map(lambda *h: jnp.asarray(h), *[RBF(h) for h in hs])  # float64 leaves
+        x = _points(25, 13, 2)
+        v = _points(26, 13, 2)
+        a, b = jax.jit(jax.vmap(lambda k: kernel_sums(k, x, v, block=4)))(stacked)
+        for i, h in enumerate(hs):
+            a_ref, b_ref = np_sums("rbf", (h,), x, v, x)
+            np.testing.assert_allclose(a[i], a_ref, rtol=1e-10, atol=1e-12)
+            np.testing.assert_allclose(b[i], b_ref, rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize(
+    "make, exc, name",
+    [
+        (lambda: RBF(math.inf), ValueError, "bandwidth"),
+        (lambda: RBF(math.nan), ValueError, "bandwidth"),
+        (lambda: RBF("0.5"), TypeError, "bandwidth"),
+        (lambda: RBF(True), TypeError, "bandwidth"),
+        (lambda: IMQ(scale=math.inf), ValueError, "scale"),
+        (lambda: IMQ(scale="1"), TypeError, "scale"),
+        (lambda: IMQ(power=-math.inf), ValueError, "power"),
+        (lambda: IMQ(power=math.nan), ValueError, "power"),
+        (lambda: IMQ(power=False), TypeError, "power"),
+        (lambda: log_kde(np.zeros((3, 2)), np.zeros((3, 2)), math.inf), ValueError, "bandwidth"),
+        (lambda: log_kde(np.zeros((3, 2)), np.zeros((3, 2)), "0.5"), TypeError, "bandwidth"),
+        (lambda: grad_log_kde(np.zeros((3, 2)), np.zeros((3, 2)), True), TypeError, "bandwidth"),
+        (lambda: kernel_sums("rbf", np.zeros((3, 2)), np.zeros((3, 2))), TypeError, "kernel"),
+        (lambda: kernel_sums(RBF, np.zeros((3, 2)), np.zeros((3, 2))), TypeError, "kernel"),
+        (lambda: kernel_sums(RBF(), np.zeros((3, 2)), np.zeros((3, 2)), block=2.0), TypeError, "block"),
+        (lambda: interaction_means(IMQ(), np.zeros((3, 2)), np.zeros((3, 2)), batch=True), TypeError, "batch"),
+        (lambda: median_distance(np.zeros((3, 2)), max_points=5.0), TypeError, "max_points"),
+        (lambda: whiten(np.zeros((3, 2)), ridge=math.inf), ValueError, "ridge"),
+    ],
+)
+def test_non_finite_strings_and_bools_are_refused(make, exc, name):
+    with pytest.raises(exc, match=rf"^{name}: expected .*; got "):
+        make()

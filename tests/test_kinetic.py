@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 
 import flowpost as fp
-from flowpost.steppers.kinetic_langevin import KineticLangevin
-from flowpost.steppers.split import Drift, Friction, Kick, Split
+from flowpost.steppers import KineticLangevin
+from flowpost.steppers import Drift, Friction, Kick, Split
 
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 
@@ -70,7 +70,7 @@ def test_baoab_one_score_per_step_and_carried_score():
                steps=50, window=25, progress=False)
     evals = [rec["grad_evals"] for rec in r.history.records if "grad_evals" in rec]
     assert evals == [25.0, 25.0]
-    np.testing.assert_allclose(np.asarray(r.state.grad), -np.asarray(r.state.x), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(np.asarray(r.state.parts[0].grad), -np.asarray(r.state.x), rtol=1e-5, atol=1e-6)  # the kick keeps it
     # the result reports positions only, with the user's shape
     assert np.shape(r.particles) == (n, 2)
 
@@ -85,10 +85,10 @@ def test_kinetic_is_the_strang_split():
     for stepper in (KineticLangevin(step_size=0.2, friction=0.7), split):
         state = stepper.start(target, x, jax.random.key(4))
         for t in range(5):
-            state, _ = stepper.advance(target, state, jax.random.fold_in(jax.random.key(5), t))
+            state, _ = stepper.advance(target, state, jax.random.fold_in(jax.random.key(5), t), jnp.asarray(0.2))
         finals.append(np.asarray(state.x))
     np.testing.assert_array_equal(finals[0], finals[1])
-    sched = [(type(p).__name__, f) for p, f in split.schedule]
+    sched = [(type(split.parts[i]).__name__, f) for i, f in split.schedule()]
     assert sched == [("Kick", 0.5), ("Drift", 0.5), ("Friction", 1.0), ("Drift", 0.5), ("Kick", 0.5)]
 
 

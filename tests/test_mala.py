@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 import flowpost as fp
-from flowpost.steppers.mala import MALA
+from flowpost import MALA
 
 Z = 4.5  # tolerance in Monte-Carlo standard errors
 
@@ -109,6 +109,37 @@ def test_mala_rejects_non_finite_proposals():
     assert abs(r.unconstrained.mean() - np.sqrt(2 / np.pi)) < Z * se
 
 
+def test_mala_tuning_is_the_acceptance_target_controller():
+    """With tune_steps > 0 the step is tuned by the run's default controller,
+    AcceptanceTarget (the recursion of the module docstring, "Optimal scaling of discrete
+    approximations to Langevin diffusions" (1998) for the target 0.574), which reports the tuned
+    step; without tuning the default controller is the constant step. On N(0, I) in d = 10 from
+    a step 100x too small: 300 tuning steps, then 200 frozen ones. The last window's mean
+    acceptance (N = 2,000 particles x 100 steps: noise about 0.002) sits near the target; the
+    tolerance 0.03 covers the remaining tuning error, as in the regression test above."""
+    stepper = MALA(step_size=1e-3, tune_steps=300)
+    ctrl = stepper.default_controller()
+    assert isinstance(ctrl, fp.AcceptanceTarget)
+    assert (ctrl.h, ctrl.accept, ctrl.adapt_steps, ctrl.gain) == (1e-3, 0.574, 300, 1.0)
+    assert isinstance(MALA(step_size=0.2).default_controller(), fp.Constant)
+
+    x0 = jax.random.normal(jax.random.key(5), (2000, 10))
+    r = fp.run(_normal(1.0), stepper, x0, key=jax.random.key(6), steps=500, window=100, progress=False)
+    assert r.status == "done", r.reason
+    tuned = r.report["tuned_step_size"]
+    assert np.isfinite(tuned) and tuned > 10 * stepper.step_size
+    assert r.history[-1]["step_size"] == pytest.approx(tuned, rel=1e-5)
+    assert abs(r.history[-1]["accept"] - 0.574) < 0.03
+
+    # the stepper itself carries no tuning state: its step is the argument h
+    target, x = fp.Target(_normal(1.0)).bind(x0[:8])
+    state = stepper.start(target, x, jax.random.key(0))
+    assert set(state._fields) == {"x", "logp", "score"}
+    _, stats = jax.jit(lambda s, st, h: s.advance(target, st, jax.random.key(1), h))(stepper, state, jnp.asarray(0.5))
+    assert set(stats) == set(MALA.reductions) == {"accept", "grad_evals"}
+    assert MALA.reductions == {"accept": "mean", "grad_evals": "sum"} and MALA.stochastic is True
+
+
 def test_mala_bad_arguments():
     with pytest.raises(ValueError, match="step_size"):
         MALA(step_size=0.0)
@@ -116,3 +147,17 @@ def test_mala_bad_arguments():
         MALA(step_size=0.1, tune_steps=-1)
     with pytest.raises(ValueError, match="target_accept"):
         MALA(step_size=0.1, target_accept=1.5)
+    # no inf / nan, no silent coercion; every message names the argument
+    with pytest.raises(ValueError, match="tune_gain: expected"):
+        MALA(tune_gain=float("inf"))
+    with pytest.raises(ValueError, match="tune_gain: expected"):
+        MALA(tune_gain=float("nan"))
+    with pytest.raises(ValueError, match="target_accept: expected"):
+        MALA(target_accept=float("nan"))
+    with pytest.raises(ValueError, match="step_size: expected"):
+        MALA(step_size=float("inf"))
+    for bad in (10.0, "ten", True):
+        with pytest.raises(TypeError, match="tune_steps: expected an integer"):
+            MALA(tune_steps=bad)
+    m = MALA(step_size=np.float32(0.25), tune_steps=np.int64(5))
+    assert type(m.step_size) is float and type(m.tune_steps) is int

@@ -18,7 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from statsmodels.tsa.stattools import acf
 
-from flowpost.mixing import (
+from flowpost.diagnostics import (
     ThinnedTrail,
     autocorrelation,
     bulk_ess,

@@ -26,7 +26,8 @@ import flowpost.testing.calibration  # noqa: E402,F401
 import flowpost.testing.checks  # noqa: E402,F401
 import flowpost.testing.moments  # noqa: E402,F401
 import flowpost.testing.references  # noqa: E402,F401
-import flowpost.steppers.langevin  # noqa: E402,F401
+import flowpost.testing.region  # noqa: E402,F401
+import flowpost.steppers  # noqa: E402,F401
 
 pytest_plugins = ["pytester"]
 
@@ -160,6 +161,61 @@ def test_score_tolerance_option(pytester, autoload):
     # in-process: the JAX modules this needs are loaded already (see the module docstring)
     result = pytester.runpytest_inprocess("-p", "no:cacheprovider", "-k", "score", "--flowpost-score-tol=10")
     result.assert_outcomes(passed=2)
+
+
+REGION_TESTS = '''
+import jax
+import jax.numpy as jnp
+import jax.scipy.stats as jst
+import numpy as np
+import pytest
+
+from flowpost.testing import Region, score_agreement
+
+DATA = {"y": jnp.array([0.4, -0.2, 1.1, 0.3, 0.8, -0.5, 0.6, 0.2])}
+
+
+def log_p(theta, data):
+    return jst.norm.logpdf(theta["m"]) + jnp.sum(jst.norm.logpdf(data["y"], theta["m"], 1.0))
+
+
+def prior_draw(key):
+    return {"m": jax.random.normal(key)}
+
+
+def test_score_with_a_region(fp_score_check, fp_key):
+    report = fp_score_check(log_p, Region.drawn(prior_draw), data=DATA)
+    assert report.worst_error < 1e-6
+    assert report.num_points == 3  # --flowpost-score-points=3: the session fills num_points
+    # ... and the key: the same points as the region drawn with fp_key
+    same = score_agreement(log_p, Region.drawn(prior_draw, num_points=3, key=fp_key), data=DATA)
+    np.testing.assert_array_equal(report.point_errors, same.point_errors)
+    assert fp_score_check(log_p, region=Region.near({"m": 0.3}, num_points=5), data=DATA).num_points == 5
+    keywords = fp_score_check(log_p, data=DATA, around={"m": 0.3}, check=False)
+    region = fp_score_check(log_p, region=Region.near({"m": 0.3}), data=DATA, check=False)
+    assert keywords.worst_error == region.worst_error
+    assert np.array_equal(keywords.point["m"], region.point["m"])
+
+
+def test_health_with_a_region(fp_health_check):
+    report = fp_health_check(log_p, region=Region.near({"m": 0.3}, scale=0.2), data=DATA,
+                             exchangeable=True)
+    assert report.passed
+
+
+def test_region_and_keywords_refused(fp_score_check, fp_health_check):
+    with pytest.raises(TypeError, match="^region, around: expected either region="):
+        fp_score_check(log_p, Region.near({"m": 0.3}), data=DATA, around={"m": 0.3})
+    with pytest.raises(TypeError, match="^fp_health_check: expected keywords .*'scal'"):
+        fp_health_check(log_p, data=DATA, around={"m": 0.3}, scal=0.2)
+'''
+
+
+def test_fixtures_accept_a_region(pytester, autoload):
+    pytester.makepyfile(test_region=REGION_TESTS)
+    # in-process: the JAX modules this needs are loaded already (see the module docstring)
+    result = pytester.runpytest_inprocess("-p", "no:cacheprovider", "--flowpost-score-points=3")
+    result.assert_outcomes(passed=3)
 
 
 SETTINGS_TESTS = '''

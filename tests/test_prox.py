@@ -1,4 +1,4 @@
-"""Tests of the proximal maps (flowpost.prox).
+"""Tests of the proximal maps (flowpost.numerics.prox).
 
 Each closed form is checked against a brute-force numerical minimisation of
 g(x) + |x - v|^2 / (2h) with scipy.optimize (minimize_scalar per coordinate for
@@ -22,8 +22,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from flowpost.inner import InnerSolver
-from flowpost.prox import (
+from flowpost.numerics import InnerSolver
+from flowpost.numerics.prox import (
     Box,
     GroupL1Penalty,
     L1Penalty,
@@ -245,9 +245,9 @@ def test_user_prox_wraps_a_function():
     np.testing.assert_allclose(np.asarray(term.value(v)), [2.5, 4.625], rtol=1e-6)
     with pytest.raises(NotImplementedError, match="value_fn"):
         UserProx(_shrink).value(v)
-    with pytest.raises(ValueError, match="prox must return an array of the shape"):
+    with pytest.raises(ValueError, match="prox: expected a function returning an array of the shape"):
         UserProx(lambda v, h: v[:1])(v, 0.5)
-    with pytest.raises(TypeError, match="prox must be callable"):
+    with pytest.raises(TypeError, match="prox: expected a callable"):
         UserProx(3.0)
 
 
@@ -307,8 +307,8 @@ def test_prox_by_solver_matches_scipy_for_nonquadratic_g():
     [
         (lambda: L1Penalty(-1.0), ValueError, "weight"),
         (lambda: WeightedL1Penalty((1.0, -2.0)), ValueError, "weights"),
-        (lambda: Box(1.0, 0.0), ValueError, "lower must be <= upper"),
-        (lambda: Box((0.0, 1.0), (1.0,)), ValueError, "same length"),
+        (lambda: Box(1.0, 0.0), ValueError, "upper: expected bounds >= lower"),
+        (lambda: Box((0.0, 1.0), (1.0,)), ValueError, "upper: expected a sequence of the same length"),
         (lambda: GroupL1Penalty(((0, 1), (1, 2))), ValueError, "disjoint"),
         (lambda: GroupL1Penalty(((0, 1), 2)), ValueError, "mix"),
         (lambda: GroupL1Penalty(()), ValueError, "groups"),
@@ -322,17 +322,132 @@ def test_bad_configs_raise(make, exc, word):
 
 def test_bad_calls_raise():
     v = jnp.ones((3, 4))
-    with pytest.raises(ValueError, match="h must be > 0"):
+    with pytest.raises(ValueError, match="h: expected a positive finite number"):
         L1Penalty()(v, 0.0)
-    with pytest.raises(ValueError, match="h must be a scalar"):
+    with pytest.raises(ValueError, match="h: expected a scalar"):
         L1Penalty()(v, jnp.ones(3))
-    with pytest.raises(TypeError, match="v must be a floating-point array"):
+    with pytest.raises(TypeError, match="v: expected a floating-point array"):
         L1Penalty()(jnp.ones(4, jnp.int32), 0.1)
-    with pytest.raises(ValueError, match=r"v must have shape \(d,\) or \(N, d\)"):
+    with pytest.raises(ValueError, match=r"v: expected an array of shape \(d,\) or \(N, d\)"):
         L1Penalty()(jnp.ones((2, 3, 4)), 0.1)
-    with pytest.raises(ValueError, match="weights has 3 entries"):
+    with pytest.raises(ValueError, match="weights: expected 4 entries"):
         WeightedL1Penalty((1.0, 2.0, 3.0))(v, 0.1)
-    with pytest.raises(ValueError, match="refers to index 7"):
+    with pytest.raises(ValueError, match=r"groups\[0\]: expected indices < d = 4"):
         GroupL1Penalty(((0, 7),))(v, 0.1)
-    with pytest.raises(ValueError, match="g must return a scalar"):
+    with pytest.raises(ValueError, match="g: expected a function returning a scalar"):
         prox_by_solver(lambda x: x, v, 0.1)
+
+
+# --------------------------------------------------------------------------
+# terms as pytrees: numbers traced, structure static
+# --------------------------------------------------------------------------
+
+def test_terms_are_pytrees_with_numbers_as_leaves():
+    leaves = jax.tree_util.tree_leaves
+    assert leaves(L1Penalty(0.5)) == [0.5]
+    assert leaves(WeightedL1Penalty((0.1, 0.2, 0.3))) == [0.1, 0.2, 0.3]
+    assert leaves(NonNegative()) == []
+    assert leaves(Box(-1.0, (1.0, 2.0))) == [-1.0, 1.0, 2.0]
+    assert leaves(Box(-math.inf, 3.0)) == [-math.inf, 3.0]
+    # the group layout and the user's callables are static structure
+    assert leaves(GroupL1Penalty(((0, 1), (2,)), 0.7)) == [0.7]
+    assert leaves(UserProx(_shrink, _half_square)) == []
+    solver = InnerSolver(tol=1e-4, max_iters=30)
+    assert leaves(SmoothProx(_half_square, solver)) == leaves(solver) == [1e-4, 30]
+    tree = jax.tree_util.tree_structure
+    assert tree(GroupL1Penalty(((0, 1),), 0.1)) == tree(GroupL1Penalty(((0, 1),), 0.9))
+    assert tree(GroupL1Penalty(((0, 1),), 0.1)) != tree(GroupL1Penalty(((0,), (1,)), 0.1))
+    assert tree(UserProx(_shrink)) != tree(UserProx(_shrink, _half_square))
+
+
+def test_jitted_function_taking_a_term_compiles_once_for_new_numbers():
+    traces = []
+
+    @jax.jit
+    def apply(term, v, h):
+        traces.append(1)  # runs once per trace
+        return term(v, h), term.value(v)
+
+    v = jax.random.normal(jax.random.key(3), (6, 3))
+    v_np = np.asarray(v, float)
+    h = 0.4
+    pairs = [
+        (L1Penalty(0.5), L1Penalty(1.5)),
+        (WeightedL1Penalty((0.1, 0.2, 0.3)), WeightedL1Penalty((1.0, 0.0, 2.0))),
+        (Box(-0.5, 0.5), Box(-1.0, 0.25)),
+        (Box((-0.5, -1.0, 0.0), (0.5, 1.0, 2.0)), Box((-0.1, -0.2, -0.3), (0.1, 0.2, 0.3))),
+        (GroupL1Penalty(((0, 1), (2,)), 0.3), GroupL1Penalty(((0, 1), (2,)), 1.1)),
+    ]
+    for first, second in pairs:
+        traces.clear()
+        for term in (first, second):
+            got, value = apply(term, v, h)
+            # same numbers as the concrete (unjitted) term
+            np.testing.assert_allclose(np.asarray(got), np.asarray(term(v, h)), rtol=1e-6, atol=1e-7)
+            np.testing.assert_allclose(np.asarray(value), np.asarray(term.value(v)), rtol=1e-6)
+        assert len(traces) == 1, type(first).__name__
+    # independent numpy references for the traced numbers: soft threshold and clip
+    np.testing.assert_allclose(
+        np.asarray(apply(L1Penalty(1.5), v, h)[0]), np.sign(v_np) * np.maximum(np.abs(v_np) - 0.6, 0.0), atol=1e-6
+    )
+    np.testing.assert_allclose(np.asarray(apply(Box(-1.0, 0.25), v, h)[0]), np.clip(v_np, -1.0, 0.25), atol=1e-7)
+
+    # SmoothProx: its solver is a leaf subtree; a new tolerance does not recompile
+    traces.clear()
+    x1, _ = apply(SmoothProx(_quadratic_s2, InnerSolver(tol=1e-3)), v, h)
+    x2, _ = apply(SmoothProx(_quadratic_s2, InnerSolver(tol=1e-6)), v, h)
+    assert len(traces) == 1
+    # closed form v / (1 + h / s2) with s2 = 2; 1-strongly convex: error <= sqrt(d) tol
+    exact = v_np / (1.0 + h / 2.0)
+    np.testing.assert_allclose(np.asarray(x1), exact, atol=math.sqrt(3) * 1e-3)
+    np.testing.assert_allclose(np.asarray(x2), exact, atol=math.sqrt(3) * 1e-6)
+
+
+def test_vmapped_sweep_over_penalty_weights():
+    lams = np.array([0.0, 0.3, 1.2])
+    stacked = jax.tree.map(lambda *w: jnp.asarray(w), *[L1Penalty(lam) for lam in lams])
+    v = jax.random.normal(jax.random.key(4), (5, 2))
+    out = jax.jit(jax.vmap(lambda term: term(v, 0.5)))(stacked)
+    v_np = np.asarray(v, float)
+    for lam, got in zip(lams, np.asarray(out)):  # soft thresholding at h lam, by numpy
+        np.testing.assert_allclose(got, np.sign(v_np) * np.maximum(np.abs(v_np) - 0.5 * lam, 0.0), atol=1e-6)
+
+
+@pytest.mark.parametrize(
+    "make, exc, name",
+    [
+        (lambda: L1Penalty(math.inf), ValueError, "weight"),
+        (lambda: L1Penalty(math.nan), ValueError, "weight"),
+        (lambda: L1Penalty("1.0"), TypeError, "weight"),
+        (lambda: L1Penalty(True), TypeError, "weight"),
+        (lambda: WeightedL1Penalty((1.0, math.inf)), ValueError, r"weights\[1\]"),
+        (lambda: WeightedL1Penalty((1.0, "2.0")), TypeError, r"weights\[1\]"),
+        (lambda: WeightedL1Penalty((True, 1.0)), TypeError, r"weights\[0\]"),
+        (lambda: WeightedL1Penalty("12"), TypeError, "weights"),
+        (lambda: WeightedL1Penalty(()), ValueError, "weights"),
+        (lambda: Box(math.nan, 1.0), ValueError, "lower"),
+        (lambda: Box(0.0, "1"), TypeError, "upper"),
+        (lambda: Box((0.0, math.nan), 1.0), ValueError, r"lower\[1\]"),
+        (lambda: Box(False, 1.0), TypeError, "lower"),
+        (lambda: GroupL1Penalty(((0, 1),), math.nan), ValueError, "weight"),
+        (lambda: GroupL1Penalty(((0, 1.0),)), TypeError, r"groups\[0\]"),
+        (lambda: GroupL1Penalty(((0, -1),)), ValueError, r"groups\[0\]"),
+        (lambda: GroupL1Penalty("01"), TypeError, "groups"),
+        (lambda: UserProx(_shrink, value_fn=3), TypeError, "value_fn"),
+        (lambda: SmoothProx(3.0), TypeError, "g"),
+    ],
+)
+def test_non_finite_strings_and_bools_are_refused(make, exc, name):
+    with pytest.raises(exc, match=rf"^{name}: expected .*; got "):
+        make()
+
+
+def test_infinite_box_bounds_are_allowed_and_h_is_checked():
+    v = jnp.asarray([[-3.0, 0.5], [2.0, -0.1]])
+    np.testing.assert_allclose(np.asarray(Box(-math.inf, 1.0)(v, 0.1)), np.minimum(np.asarray(v), 1.0))
+    with pytest.raises(ValueError, match=r"^h: expected a positive finite number; got inf"):
+        L1Penalty()(v, math.inf)
+    with pytest.raises(TypeError, match=r"^h: expected"):
+        L1Penalty()(v, True)
+    with pytest.raises(TypeError, match=r"^h: expected"):
+        L1Penalty()(v, "0.1")

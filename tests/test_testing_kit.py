@@ -40,6 +40,7 @@ from flowpost.testing.references import (
     LinearRegressionKnownNoise,
     NormalKnownVariance,
 )
+from flowpost.testing.region import Region
 
 FEW = settings(max_examples=6, deadline=None, derandomize=True,
                suppress_health_check=[HealthCheck.too_slow])
@@ -339,7 +340,7 @@ def test_reference_families_validate_their_arguments():
     with pytest.raises(ValueError, match="successes"):
         BetaBinomial().posterior_parameters({"successes": np.array([3]), "trials": np.array([2])})
     # the support names are ones the library's constraint transforms understand
-    support = pytest.importorskip("flowpost.support")
+    support = pytest.importorskip("flowpost.model")
     for cls in CLOSED_FORM_MODELS:
         for name in cls.supports.values():
             assert support.as_support(name).describe().startswith(name.replace("unit", "interval"))
@@ -470,11 +471,11 @@ def test_score_check_names_matrix_entries_and_runs_eagerly():
 
 
 def test_score_check_rejects_bad_arguments():
-    with pytest.raises(ValueError, match="exactly one of `sampler`"):
+    with pytest.raises(ValueError, match="around, sampler: expected exactly one"):
         score_agreement(lambda t: -jnp.sum(t**2))
     with pytest.raises(ValueError, match="scalar"):
         score_agreement(lambda t: -t**2, around=jnp.zeros(3))
-    with pytest.raises(ValueError, match="exchangeable=True needs `data`"):
+    with pytest.raises(ValueError, match=r"data: expected .*\(exchangeable=True\); got None"):
         check_health(lambda t: -jnp.sum(t**2), around=jnp.zeros(3), exchangeable=True)
 
 
@@ -575,6 +576,121 @@ def test_points_near_strategy_and_health_at_those_points(point):
     theta = {"mu": point["w"][0] * point["s"]}
     assert_scalar_output(model.log_density, theta, data=_data_for(model))
     assert_deterministic(model.log_density, theta, data=_data_for(model))
+
+
+# ============================================================================ regions
+def _old_perturbations(around, scale, num, key):
+    """The points of the former keyword form ``around=, scale=, num_points=, key=``, written
+    out here: per point, per leaf in tree_flatten order, ``leaf + scale * z`` with ``z`` from
+    a numpy generator seeded by the key's raw bits; float32 leaves stay float32."""
+    rng = np.random.default_rng(np.asarray(jax.random.key_data(key), dtype=np.uint32).ravel())
+    leaves, treedef = jax.tree.flatten(around)
+    out = []
+    for _ in range(num):
+        out.append(jax.tree.unflatten(treedef, [
+            (np.asarray(b) + scale * rng.standard_normal(np.shape(b))).astype(np.float32) for b in leaves]))
+    return out
+
+
+def test_region_points_are_those_of_the_keywords():
+    point = {"s": jnp.float32(0.2), "w": jnp.array([0.5, -1.0, 1.5])}
+    key = jax.random.key(7)
+    near = Region.near(point, scale=0.3, num_points=5, key=key)
+    got = near.points(16)
+    assert len(got) == 5
+    for a, b in zip(got, _old_perturbations(point, 0.3, 5, key), strict=True):
+        assert jax.tree.structure(a) == jax.tree.structure(b)
+        for x, y in zip(jax.tree.leaves(a), jax.tree.leaves(b), strict=True):
+            assert x.dtype == y.dtype and np.array_equal(x, y)
+    # unset num_points takes the check's default; unset key is jax.random.key(0)
+    assert len(Region.near(point).points(8)) == 8
+    for a, b in zip(Region.near(point, num_points=3).points(99),
+                    Region.near(point, num_points=3, key=jax.random.key(0)).points(99), strict=True):
+        assert all(np.array_equal(x, y) for x, y in zip(jax.tree.leaves(a), jax.tree.leaves(b), strict=True))
+    # drawn: sampler(k) for keys split from the region's key
+    sampler = lambda k: {"w": jax.random.normal(k, (2,))}
+    drawn = Region.drawn(sampler, key=key).points(4)
+    expected = [sampler(k) for k in jax.random.split(key, 4)]
+    np.testing.assert_array_equal(np.stack([d["w"] for d in drawn]), np.stack([e["w"] for e in expected]))
+
+    # the checks give the same numbers with a region as with the keywords
+    def log_p(theta):
+        return -_half_square_twice(theta["w"]) + jss.norm.logpdf(theta["s"], 0.0, 2.0)
+
+    by_keywords = score_agreement(log_p, around=point, scale=0.3, num_points=5, key=key)
+    by_region = score_agreement(log_p, near)
+    assert by_region.worst_error == by_keywords.worst_error
+    np.testing.assert_array_equal(by_region.point_errors, by_keywords.point_errors)
+    assert by_region.coordinate_errors == by_keywords.coordinate_errors
+    model = _FIXED_MODELS[0]
+    data = _data_for(model)
+
+    def first_row_special(theta, d):
+        y = d["y"]
+        return jss.norm.logpdf(y[0], theta["mu"], 10.0) + jnp.sum(jss.norm.logpdf(y[1:], theta["mu"], 0.5))
+
+    mu = {"mu": jnp.float32(0.5)}
+    kw = check_health(first_row_special, data=data, around=mu, scale=0.2, key=key, exchangeable=True)
+    rg = check_health(first_row_special, Region.near(mu, 0.2, key=key), data=data, exchangeable=True)
+    assert kw.results == rg.results and set(rg.failures) == {"exchangeable"}
+    assert_finite_on_region(lambda x: jnp.sum(jnp.log(x)), region=Region.near(jnp.array([5.0])))
+    with pytest.raises(AssertionError, match=r"not finite at \d+ of 7 points"):
+        assert_finite_on_region(lambda x: jnp.sum(jnp.log(x)), Region.near(jnp.array([0.5]), 1.0, 7))
+    assert_vmap_matches_loop(lambda x: -0.5 * jnp.sum(x**2), Region.drawn(lambda k: jax.random.normal(k, (2,))))
+
+
+def test_region_refuses_bad_values_naming_the_argument():
+    point = jnp.zeros(2)
+    with pytest.raises(TypeError, match=r"^num_points: expected an integer >= 1; got 2\.5$"):
+        Region.near(point, num_points=2.5)
+    with pytest.raises(TypeError, match=r"^num_points: expected an integer >= 1; got True$"):
+        Region.near(point, num_points=True)
+    with pytest.raises(ValueError, match=r"^num_points: expected an integer >= 1; got 0$"):
+        Region.drawn(lambda k: point, num_points=0)
+    with pytest.raises(ValueError, match=r"^scale: expected a finite number >= 0; got nan$"):
+        Region.near(point, scale=float("nan"))
+    with pytest.raises(ValueError, match=r"^scale: expected a finite number >= 0; got inf$"):
+        Region.near(point, scale=float("inf"))
+    with pytest.raises(ValueError, match=r"^scale: expected a finite number >= 0; got -0\.1$"):
+        Region.near(point, scale=-0.1)
+    with pytest.raises(TypeError, match=r"^scale: expected .*; got '0\.1'$"):
+        Region.near(point, scale="0.1")
+    with pytest.raises(ValueError, match=r"^around, sampler: expected exactly one .*; got both$"):
+        Region(around=point, sampler=lambda k: point)
+    with pytest.raises(ValueError, match=r"^around, sampler: expected exactly one .*; got neither$"):
+        Region()
+    with pytest.raises(TypeError, match=r"^sampler: expected a callable key -> pytree; got"):
+        Region.drawn(point)
+    with pytest.raises(TypeError, match=r"^key: expected a jax PRNG key .*; got 0$"):
+        Region.near(point, key=0)
+    with pytest.raises(ValueError, match=r"^key: expected a single PRNG key"):
+        Region.near(point, key=jax.random.split(jax.random.key(0), 3))
+    with pytest.raises(ValueError, match=r"^around: expected a pytree with at least one array leaf"):
+        Region.near({})
+    Region.near(point, key=jax.random.PRNGKey(1))  # a legacy raw key is a key
+    # the same refusals through the keyword shortcut, named the same way
+    with pytest.raises(TypeError, match=r"^num_points: expected an integer"):
+        score_agreement(lambda t: -jnp.sum(t**2), around=point, num_points=2.5)
+    with pytest.raises(ValueError, match=r"^scale: expected a finite number >= 0; got nan$"):
+        check_health(lambda t: -jnp.sum(t**2), around=point, scale=float("nan"))
+
+
+def test_region_and_loose_keywords_are_not_both_given():
+    point = jnp.zeros(2)
+    log_p = lambda t: -jnp.sum(t**2)
+    region = Region.near(point)
+    for check in (score_agreement, assert_score_matches, assert_finite_on_region,
+                  assert_vmap_matches_loop, check_health):
+        with pytest.raises(TypeError, match=r"^region, around: expected either region= or the keywords"):
+            check(log_p, region, around=point)
+        with pytest.raises(TypeError, match=r"^region, num_points, key: expected either region="):
+            check(log_p, region=region, num_points=3, key=jax.random.key(1))
+        # a misspelt keyword is named, with the region keyword it resembles
+        with pytest.raises(TypeError, match=rf"^{check.__name__}: expected keywords .*'aroud' "
+                                            r"\(did you mean 'around'\?\)"):
+            check(log_p, aroud=point)
+        with pytest.raises(TypeError, match=r"^region: expected a Region .*; got the class Region"):
+            check(log_p, Region)
 
 
 # ============================================================================ moment assertions

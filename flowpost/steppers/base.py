@@ -1,71 +1,96 @@
-"""The stepper protocol: how any particle flow plugs into :func:`flowpost.run`.
+r"""The stepper protocol: one protocol for whole steppers and for the parts of a splitting.
 
-A **stepper** is an immutable, hashable configuration object (a frozen dataclass) with two
-pure functions:
+A **stepper** is a JAX pytree (a :func:`~flowpost._pytree.pytree_dataclass`): its numeric
+hyperparameters (friction, bandwidths, tolerances, the initial step size) are traced leaves,
+its structural choices (block sizes, orders, forms, the parts of a composition, user
+callables) are static. Changing a number never recompiles; a sweep over numbers can be
+``vmap``-ped. The step size ``h`` is **not** read from the stepper inside a step: it is an
+argument of :meth:`Stepper.advance`, set by a step-size controller that :func:`flowpost.run`
+owns (:mod:`flowpost.engine` (controllers)).
+
+Methods (all traced by JAX, so pure: no Python side effects, no Python control flow on
+array values):
 
 ``start(target, x, key) -> state``
-    Build the stepper's state from the unconstrained starting ensemble ``x`` of shape
-    ``(N, d)``. ``state`` is any pytree of arrays whose field ``x`` holds the current
-    ``(N, d)`` ensemble (a NamedTuple with an ``x`` field is the usual choice). A stepper
-    that already evaluates the log-density and score may also keep them in fields
-    ``logp`` ``(N,)`` and ``score`` ``(N, d)`` for the ensemble ``x``: the monitor then reuses
-    them instead of recomputing.
-
-``advance(target, state, key) -> (state, stats)``
-    Take one step of the flow. ``key`` is a fresh PRNG key for this step. ``stats`` is a
-    small dict of scalar arrays with per-step figures for the monitor, for example
-    ``{"grad_evals": 1.0}`` (score evaluations per particle in this step), ``"accept"``
-    (acceptance rate), ``"inner_iters"``, ``"inner_residual"``, ``"inner_capped"`` (count of
-    inner solves that stopped at their cap). The monitor averages stats over the steps of a
-    window, except names starting with ``n_`` or ending in ``_evals`` or ``_capped``, which
-    it sums. Every step must return the same stats structure.
-
-Both functions are traced by JAX (``advance`` inside ``lax.scan``), so they must be pure:
-no Python side effects, no Python control flow on array values. The configuration object is
-a static argument of the compiled window, so it must be hashable and must not hold arrays.
-
-Two optional members:
-
-``step_size``
-    The flow time one step advances (used for drift per unit time and for halving the step
-    after a blow-up via ``dataclasses.replace``). Every stepper in the library has it.
+    The stepper's state for the unconstrained starting ensemble ``x`` of shape ``(N, d)``.
+    ``state`` is a ``NamedTuple`` whose field ``x`` holds the ensemble. Optional fields with
+    fixed meanings: ``v`` (a momentum, ``(N, d)``), ``logp`` ``(N,)`` and ``score`` ``(N, d)``
+    (the log-density and score at ``x``; the monitor reuses them). Every leaf that has one
+    value per particle carries the particle axis first.
+``advance(target, state, key, h) -> (state, stats)``
+    One step of length ``h`` (a scalar array of the ensemble's dtype). ``key`` is fresh for
+    the step. ``stats`` is a dict of scalar arrays with the same keys at every step.
+``default_controller() -> Controller``
+    The controller used when :func:`flowpost.run` is given none: for library steppers a
+    constant step at the stepper's ``step_size`` (MALA with ``tune_steps`` asks for
+    acceptance targeting instead).
 ``report(state) -> dict``
-    Host-side figures worth keeping in the result (e.g. a tuned step size).
+    Host-side figures kept in the result (``{}`` by default).
+
+Declarations (class attributes or properties, **no defaults**: a stepper missing one is
+refused by :func:`check_stepper` with a message that says what to add):
+
+``stochastic : bool``
+    Whether the step draws noise (the monitor tracks R-hat and ESS only then).
+``reductions : Mapping[str, str]``
+    For every stat the step returns, how it reduces over a window's steps: ``"sum"``
+    (counts: ``grad_evals``, ``inner_capped``), ``"mean"`` (rates and sizes: ``accept``,
+    ``inner_iters``) or ``"max"`` (worst cases: ``inner_residual``). Always includes
+    ``"grad_evals": "sum"`` (score evaluations per particle in the step, inner ones included).
+
+Declarations with documented base-class values, read by :class:`~flowpost.steppers.Split`:
+
+``moves_position : bool`` (``True``)
+    ``False`` for a step that leaves ``x`` unchanged (a momentum kick, a friction step), so a
+    composition knows a gradient taken at ``x`` is still valid after it.
+``uses_momentum : bool`` (``False``)
+    ``True`` for a step that reads or writes the momentum ``state.v``.
+
+Parts of a composition are steppers of the same protocol. :class:`~flowpost.steppers.Split`
+keeps the tuple of its parts' states with their ``x`` (and ``v``) slots emptied, and before
+each sub-step puts the current positions (and momentum) back: positions and momentum are
+the coordinates all parts share; warm starts, caches and counters stay each part's own. A
+part may keep a gradient at its incoming positions in a state field ``grad``; the
+composition empties it (``grad=None``) whenever another part has moved the positions since,
+so the part recomputes it.
 
 Example
 -------
 A user's own stepper (gradient ascent with noise, written out)::
 
-    @dataclass(frozen=True)
-    class MyFlow:
+    @fp.pytree_dataclass
+    class MyFlow(fp.Stepper):
         step_size: float = 1e-2
 
-        def start(self, target, x, key):
-            return ParticleState(x=x)
+        stochastic = True
+        reductions = {"grad_evals": "sum"}
 
-        def advance(self, target, state, key):
-            h = self.step_size
+        def start(self, target, x, key):
+            return fp.ParticleState(x=x)
+
+        def advance(self, target, state, key, h):
             x = state.x + h * target.score(state.x)
             x = x + jnp.sqrt(2 * h) * jax.random.normal(key, x.shape, x.dtype)
-            return ParticleState(x=x), {"grad_evals": jnp.ones((), x.dtype)}
+            return fp.ParticleState(x=x), {"grad_evals": jnp.ones((), x.dtype)}
 """
 from __future__ import annotations
 
-import math
-from typing import Any, NamedTuple, Protocol, runtime_checkable
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any, ClassVar, NamedTuple
 
 import jax
 
-__all__ = ["Stepper", "ParticleState", "ScoredState", "check_stepper", "positive_number"]
+from .._validate import fail, positive
 
+if TYPE_CHECKING:  # pragma: no cover
+    from ..engine._controllers import Controller
 
-@runtime_checkable
-class Stepper(Protocol):
-    """Structural type of a stepper (see the module docstring)."""
+__all__ = [
+    "Stepper", "ParticleState", "ScoredState", "check_stepper", "REDUCTIONS",
+    "declared_reductions", "positive_number", "check_stats",
+]
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> Any: ...
-
-    def advance(self, target, state: Any, key: jax.Array) -> tuple[Any, dict]: ...
+REDUCTIONS = ("sum", "mean", "max")
 
 
 class ParticleState(NamedTuple):
@@ -82,31 +107,95 @@ class ScoredState(NamedTuple):
     score: jax.Array
 
 
-def check_stepper(stepper) -> None:
-    """Raise a clear error if ``stepper`` does not follow the protocol."""
-    if not (callable(getattr(stepper, "start", None)) and callable(getattr(stepper, "advance", None))):
-        raise TypeError(
-            f"stepper: expected an object with start(target, x, key) and advance(target, state, key) "
-            f"methods (e.g. flowpost.Langevin(step_size=1e-3)); got {type(stepper).__name__}"
-        )
-    try:
-        hash(stepper)
-    except TypeError as err:
-        raise TypeError(
-            f"stepper: {type(stepper).__name__} must be hashable (use a frozen dataclass without "
-            "array fields) because it is a static argument of the compiled step"
-        ) from err
+class Stepper:
+    """Base class of steppers (see the module docstring for the protocol).
+
+    Subclasses are :func:`~flowpost._pytree.pytree_dataclass` classes that declare
+    ``stochastic`` and ``reductions`` and implement ``start`` and ``advance``.
+    """
+
+    moves_position: ClassVar[bool] = True
+    uses_momentum: ClassVar[bool] = False
+
+    def start(self, target: Any, x: jax.Array, key: jax.Array) -> Any:  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def advance(self, target: Any, state: Any, key: jax.Array, h: jax.Array) -> tuple[Any, dict]:  # pragma: no cover
+        raise NotImplementedError
+
+    def default_controller(self) -> Controller:
+        """A constant step at ``self.step_size`` (steppers without one must be given
+        ``step_size=`` by :func:`flowpost.run`)."""
+        from .._pytree import unchecked
+        from ..engine._controllers import Constant
+
+        try:
+            h = self.step_size  # type: ignore[attr-defined]
+        except AttributeError:
+            raise TypeError(
+                f"step_size: expected a step size for {type(self).__name__}, which has none of its "
+                "own; got none (pass step_size=... to flowpost.run)"
+            ) from None
+        return unchecked(Constant, h=h)
+
+    def report(self, state: Any) -> dict:
+        """Host-side figures kept in the result; none by default."""
+        return {}
 
 
 def positive_number(name: str, value: Any) -> float:
-    """``float(value)`` when it is a positive finite number, else a clear error naming
-    ``name`` (every stepper checks its ``step_size`` with this)."""
-    if isinstance(value, bool):
-        raise TypeError(f"{name}: must be a positive number; got {value!r}")
+    """``float(value)`` when it is a positive finite number, else a clear error naming ``name``."""
+    return positive(name, value)
+
+
+def declared_reductions(stepper: Any) -> dict[str, str]:
+    """The stepper's declared stat reductions, checked (see :func:`check_stepper`)."""
+    red = stepper.reductions
+    return dict(red)
+
+
+def check_stepper(stepper: Any, name: str = "stepper") -> None:
+    """Refuse, with a clear error, an object that does not follow the protocol or lacks a
+    declaration (``stochastic``, ``reductions``)."""
+    if isinstance(stepper, type):
+        raise fail(name, "a stepper instance such as flowpost.Langevin(step_size=1e-3)", stepper, TypeError)
+    missing = [m for m in ("start", "advance", "default_controller", "report")
+               if not callable(getattr(type(stepper), m, None))]
+    if missing:
+        raise fail(name, "an object with start(target, x, key), advance(target, state, key, h), "
+                         "default_controller() and report(state) (subclass flowpost.Stepper); "
+                         f"missing {', '.join(missing)}", stepper, TypeError)
+    for decl, what in (("stochastic", "True or False"), ("reductions", "a mapping stat -> 'sum' | 'mean' | 'max'")):
+        try:
+            getattr(stepper, decl)
+        except AttributeError:
+            raise TypeError(
+                f"{name}: expected {type(stepper).__name__} to declare `{decl}` ({what}); got no "
+                "declaration (steppers declare it as a class attribute, without defaults)"
+            ) from None
+    if not isinstance(stepper.stochastic, bool):
+        raise fail(f"{name}.stochastic", "True or False", stepper.stochastic, TypeError)
+    red = stepper.reductions
+    if not isinstance(red, Mapping):
+        raise fail(f"{name}.reductions", "a mapping stat -> 'sum' | 'mean' | 'max'", red, TypeError)
+    bad = {k: v for k, v in red.items() if not isinstance(k, str) or v not in REDUCTIONS}
+    if bad:
+        raise fail(f"{name}.reductions", "each stat mapped to 'sum', 'mean' or 'max'", bad)
+    if "grad_evals" not in red:
+        raise fail(f"{name}.reductions", "an entry for 'grad_evals' (score evaluations per particle)", dict(red))
     try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise TypeError(f"{name}: must be a positive number; got {value!r}") from None
-    if not (v > 0 and math.isfinite(v)):
-        raise ValueError(f"{name}: must be a positive finite number; got {value!r}")
-    return v
+        jax.tree_util.tree_leaves(stepper)
+    except Exception as err:  # pragma: no cover - defensive
+        raise fail(name, "a JAX pytree (decorate the class with flowpost.pytree_dataclass)", stepper,
+                   TypeError) from err
+
+
+def check_stats(stepper: Any, stats: Mapping[str, Any], name: str = "stepper") -> None:
+    """Every stat the step returns must have a declared reduction."""
+    red = stepper.reductions
+    undeclared = sorted(k for k in stats if k not in red)
+    if undeclared:
+        raise TypeError(
+            f"{name}: expected every stat of {type(stepper).__name__}.advance to have a declared "
+            f"reduction in `reductions`; got undeclared {undeclared}"
+        )

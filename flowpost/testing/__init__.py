@@ -1,5 +1,8 @@
 """flowpost's test kit for users' own log-densities (and for flowpost's own tests).
 
+- Where to check: :class:`Region` (``Region.near(point, scale)`` or
+  ``Region.drawn(sampler)``), taken by the score and health checks below, which also accept
+  its fields as keywords (``around=``, ``sampler=``, ``scale=``, ``num_points=``, ``key=``).
 - Score checks: :func:`score_agreement`, :func:`assert_score_matches` (autodiff against
   central finite differences in float64).
 - Health checks: :func:`check_health` and the ``assert_*`` helpers (scalar output, finite on
@@ -22,6 +25,7 @@ _WHERE = {
         "assert_finite_on_region", "assert_jit_matches_eager", "assert_scalar_output",
         "assert_score_matches", "assert_vmap_matches_loop", "check_health", "points_near",
         "score_agreement")},
+    "Region": "region",
     **{n: "moments" for n in ("MomentZScores", "assert_moments_match", "moment_zscores")},
     **{n: "references" for n in (
         "CLOSED_FORM_MODELS", "BetaBinomial", "ClosedFormModel", "DirichletMultinomial", "GammaPoisson",
@@ -44,6 +48,7 @@ def __dir__():
 
 
 __all__ = [
+    "Region",
     "calibrate", "CalibrationReport",
     "score_agreement", "assert_score_matches", "ScoreAgreement",
     "check_health", "HealthReport", "assert_scalar_output", "assert_finite_on_region",

@@ -12,7 +12,7 @@ inaccurate stepper shows up as non-uniform ranks: a U shape (posteriors too narr
 (too wide), a slope (biased).
 
 Here the L draws are the particles of one ensemble run per simulated dataset. The M runs
-are batched: the whole flow for one dataset is a pure function (:func:`flowpost.driver.evolve`)
+are batched: the whole flow for one dataset is a pure function (:func:`flowpost.evolve`)
 which is ``vmap``-ped over datasets in chunks of ``batch`` (``lax.map`` with a batch size), so
 a useful SBC (a few hundred datasets, a hundred particles each) compiles once and runs in
 minutes on two cores. Uniformity of the binned ranks is tested per element with Pearson's
@@ -29,24 +29,25 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.stats
 
-from ..driver import evolve
+from ..engine._driver import evolve
 from ..steppers.base import check_stepper
-from ..target import Target
+from ..model._target import Target
 
 __all__ = ["calibrate", "CalibrationReport"]
 
 
-@partial(jax.jit, static_argnames=("stepper", "steps", "batch"))
-def _ranks(stepper, steps, batch, template, x0, datas, truths, keys):
+@partial(jax.jit, static_argnames=("steps", "batch"))
+def _ranks(stepper, controller, steps, batch, template, x0, datas, truths, keys):
     """Ranks of the true values among each dataset's final particles, all datasets in one
     compiled function (``lax.map`` over chunks of ``batch`` vmapped datasets); compiled once
-    per (stepper, steps, batch, model, shapes)."""
+    per (stepper structure, controller structure, steps, batch, model, shapes): the stepper's
+    and controller's numbers are traced."""
     target_def = jax.tree_util.tree_structure(template)
 
     def one(args):
         data, truth, k = args
         tgt = jax.tree_util.tree_unflatten(target_def, jax.tree_util.tree_leaves(data))
-        state = evolve(stepper, tgt, x0, k, steps)
+        state = evolve(stepper, tgt, x0, k, steps, controller)
         draws = tgt.constrained_matrix(state.x)
         return jnp.sum(draws < truth[None, :], axis=0), jnp.all(jnp.isfinite(draws))
 
@@ -182,7 +183,8 @@ def calibrate(
     true_mat = jax.vmap(lambda th: jnp.concatenate(
         [jnp.reshape(l, (-1,)) for l in layout.treedef.flatten_up_to(th)]))(thetas)
     run_keys = jax.random.split(k_run, n_datasets)
-    ranks, finite = _ranks(stepper, steps, int(batch), bound, x0, datas, true_mat, run_keys)
+    controller = stepper.default_controller()
+    ranks, finite = _ranks(stepper, controller, steps, int(batch), bound, x0, datas, true_mat, run_keys)
     ranks, finite = np.asarray(ranks), np.asarray(finite)
     names = layout.element_names()
     ok = ranks[finite]

@@ -44,20 +44,35 @@ of them and returns a :class:`HealthReport`. Two values ``a, b`` are said to agr
 unless ``rtol`` is given (``sqrt(eps)`` is about 3.5e-4 in float32 and 1.5e-8 in float64:
 enough for re-ordered floating-point sums, far below any real discrepancy).
 
-Points on a "region" come either from a user sampler ``sampler(key) -> pytree`` or from
-Gaussian perturbations ``around + scale * z`` (``z`` standard normal, one per element, drawn
-with a numpy generator seeded by the bits of ``key``) of a given pytree ``around``; sampler
-keys are split from ``key``. ``key`` defaults to ``jax.random.key(0)``.
+Where to check
+--------------
+The points of a check come from one value, a :class:`~flowpost.testing.Region`: either
+``Region.drawn(sampler)``, points ``sampler(k_j)`` for keys split from the region's key, or
+``Region.near(around, scale)``, Gaussian perturbations ``around + scale * z`` (``z``
+standard normal, one per element, drawn with a numpy generator seeded by the bits of the
+key) of a given pytree. The key defaults to ``jax.random.key(0)``; the number of points, when
+the region leaves it unset, is the check's own default (16 for the score check and
+:func:`check_health`, 32 for :func:`assert_finite_on_region`, 8 for
+:func:`assert_vmap_matches_loop`). Every check that takes ``region=`` also takes the
+region's fields as loose keywords, ``around=, sampler=, scale=, num_points=, key=`` (a
+shortcut for the same region; giving both is an error):
+
+    score_agreement(log_p, Region.near(point, scale=0.3, num_points=5))
+    score_agreement(log_p, around=point, scale=0.3, num_points=5)       # the same points
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Callable
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 from jax.flatten_util import ravel_pytree
+
+from .._validate import boolean, callable_value, fail, integer, non_negative, positive
+from ..model._labels import element_label, path_label
+from .region import Region, default_key
 
 __all__ = [
     "ScoreAgreement",
@@ -75,29 +90,11 @@ __all__ = [
 ]
 
 LogDensity = Callable[..., Any]
-Sampler = Callable[[jax.Array], Any]
 
 
 # ----------------------------------------------------------------------------- helpers
 def _call(log_p: LogDensity, theta, data):
     return log_p(theta) if data is None else log_p(theta, data)
-
-
-def _path_label(path) -> str:
-    """Readable name of a pytree path: ``w``, ``layer.b``, ``[1]``; the root is ``theta``."""
-    out = ""
-    for k in path:
-        if isinstance(k, jax.tree_util.DictKey):
-            out += ("." if out else "") + str(k.key)
-        elif isinstance(k, jax.tree_util.GetAttrKey):
-            out += ("." if out else "") + str(k.name)
-        elif isinstance(k, jax.tree_util.SequenceKey):
-            out += f"[{k.idx}]"
-        elif isinstance(k, jax.tree_util.FlattenedIndexKey):
-            out += f"[{k.key}]"
-        else:  # pragma: no cover - unusual key kinds
-            out += str(k)
-    return out or "theta"
 
 
 @dataclass(frozen=True)
@@ -108,70 +105,16 @@ class _Coordinate:
     flat_index: int  # index within the flattened leaf
 
 
-def _element_label(leaf: str, index: tuple[int, ...]) -> str:
-    return leaf if index == () else f"{leaf}[{','.join(map(str, index))}]"
-
-
 def _coordinates(tree, *, leading: int = 0) -> list[_Coordinate]:
     """One entry per scalar of ``tree`` in ``ravel_pytree`` order (leaves in
     ``tree_flatten`` order, each raveled in C order). ``leading`` axes are skipped."""
     out = []
     for path, leaf in jax.tree_util.tree_flatten_with_path(tree)[0]:
-        name = _path_label(path)
+        name = path_label(path)
         shape = tuple(np.shape(leaf))[leading:]
         for flat, idx in enumerate(np.ndindex(*shape)):
-            out.append(_Coordinate(_element_label(name, idx), name, tuple(idx), flat))
+            out.append(_Coordinate(element_label(name, idx), name, tuple(idx), flat))
     return out
-
-
-def _default_key(key):
-    return jax.random.key(0) if key is None else key
-
-
-def _region_points(key, num_points: int, sampler, around, scale: float) -> list:
-    """Points of the region: ``num_points`` draws of ``sampler`` or perturbations of ``around``."""
-    if (sampler is None) == (around is None):
-        raise ValueError(
-            "give exactly one of `sampler` (a function key -> pytree) or `around` (a pytree)"
-            f"; got sampler={'None' if sampler is None else 'given'}, "
-            f"around={'None' if around is None else 'given'}"
-        )
-    if not isinstance(num_points, (int, np.integer)) or num_points < 1:
-        raise ValueError(f"num_points: expected a positive integer; got {num_points!r}")
-    key = _default_key(key)
-    if sampler is not None:
-        if not callable(sampler):
-            raise TypeError(f"sampler: expected a callable key -> pytree; got {type(sampler).__name__}")
-        return [sampler(k) for k in jax.random.split(key, int(num_points))]
-    if not float(scale) >= 0.0:
-        raise ValueError(f"scale: expected a non-negative number; got {scale!r}")
-    leaves, treedef = jax.tree_util.tree_flatten(around)
-    if not leaves:
-        raise ValueError("around: expected a pytree with at least one array leaf; got none")
-    # The perturbations are drawn with numpy, seeded by the key's bits: cheap, and no
-    # compilation per leaf shape.
-    rng = np.random.default_rng(_key_bits(key))
-    bases = []
-    default = np.dtype(jnp.result_type(float))  # float32 unless x64 is enabled
-    for leaf in leaves:
-        arr = np.asarray(leaf)
-        if isinstance(leaf, (bool, int, float)) or not np.issubdtype(arr.dtype, np.floating):
-            arr = arr.astype(default)  # Python scalars and integers take JAX's default float
-        bases.append(arr)
-    return [
-        jax.tree_util.tree_unflatten(
-            treedef,
-            [(b + scale * rng.standard_normal(b.shape)).astype(b.dtype) for b in bases],
-        )
-        for _ in range(int(num_points))
-    ]
-
-
-def _key_bits(key) -> np.ndarray:
-    """The raw bits of a jax PRNG key (new-style typed key or legacy uint32 array)."""
-    if jnp.issubdtype(key.dtype, jax.dtypes.prng_key):
-        key = jax.random.key_data(key)
-    return np.asarray(key, dtype=np.uint32).ravel()
 
 
 def _stack(points: list):
@@ -211,7 +154,7 @@ def _short(tree, digits: int = 6) -> str:
         leaves = jax.tree_util.tree_flatten_with_path(tree)[0]
         if len(leaves) == 1 and leaves[0][0] == ():
             return np.array2string(np.asarray(leaves[0][1]))
-        parts = [f"{_path_label(p)}={np.array2string(np.asarray(v))}" for p, v in leaves]
+        parts = [f"{path_label(p)}={np.array2string(np.asarray(v))}" for p, v in leaves]
     return "{" + ", ".join(parts) + "}"
 
 
@@ -333,16 +276,13 @@ def _score_evaluator(log_p, data64, unravel, dim: int, step: float, compiled: bo
 
 def score_agreement(
     log_p: LogDensity,
+    region: Region | None = None,
     *,
     data: Any = None,
-    sampler: Sampler | None = None,
-    around: Any = None,
-    scale: float = 0.1,
-    num_points: int = 16,
-    key: jax.Array | None = None,
     step: float = 1e-5,
     atol: float | None = None,
     compiled: bool = True,
+    **where: Any,
 ) -> ScoreAgreement:
     """Compare the autodiff score of ``log_p`` with finite differences at many points.
 
@@ -355,19 +295,15 @@ def score_agreement(
     ----------
     log_p : callable
         ``log_p(theta)`` or ``log_p(theta, data)`` returning a scalar.
+    region : Region, optional
+        Where to check: ``Region.near(point, scale)`` or ``Region.drawn(sampler)``
+        (16 points unless the region sets ``num_points``).
+    **where
+        Instead of ``region``, its fields as keywords: ``around=`` or ``sampler=``, and
+        ``scale=``, ``num_points=``, ``key=`` (see :meth:`Region.from_keywords`).
     data : pytree, optional
         Passed as the second positional argument when given; its floating leaves are cast
         to float64.
-    sampler : callable, optional
-        ``sampler(key) -> theta``; points are ``sampler(k)`` for ``num_points`` keys.
-    around : pytree, optional
-        Instead of ``sampler``: points are ``around + scale * z``, ``z ~ N(0, I)``.
-    scale : float
-        Standard deviation of the perturbations around ``around``.
-    num_points : int
-        Number of points.
-    key : jax key, optional
-        Default ``jax.random.key(0)``.
     step : float
         Relative finite-difference step (``h_i = step * max(1, |x_i|)``).
     atol : float, optional
@@ -381,21 +317,19 @@ def score_agreement(
     -------
     ScoreAgreement
     """
-    if not callable(log_p):
-        raise TypeError(f"log_p: expected a callable; got {type(log_p).__name__}")
-    if not float(step) > 0.0:
-        raise ValueError(f"step: expected a positive number; got {step!r}")
-    if atol is not None and not float(atol) > 0.0:
-        raise ValueError(f"atol: expected a positive number or None; got {atol!r}")
-    points = _region_points(key, num_points, sampler, around, scale)
-    points = [_to_numpy(p) for p in points]
+    callable_value("log_p", log_p)
+    region = Region.from_keywords(where, region=region, caller="score_agreement")
+    step = positive("step", step)
+    atol = None if atol is None else positive("atol", atol)
+    compiled = boolean("compiled", compiled)
+    points = [_to_numpy(p) for p in region.points(16)]
 
     with jax.enable_x64(True):
         first = _cast64_theta(points[0])
         flat0, unravel = ravel_pytree(first)
         dim = int(flat0.shape[0])
         if dim == 0:
-            raise ValueError("theta: the points have no coordinates (empty pytree)")
+            raise fail("theta", "points with at least one coordinate", points[0])
         coords = _coordinates(first)
         data64 = _cast64_data(data)
         out0 = jax.eval_shape(lambda t: _call(log_p, t, data64), first)
@@ -409,8 +343,8 @@ def score_agreement(
             x, _ = ravel_pytree(_cast64_theta(p))
             if x.shape != flat0.shape:
                 raise ValueError(
-                    "sampler: every point must have the same structure and shapes; "
-                    f"got {x.shape[0]} coordinates instead of {dim}"
+                    f"sampler: expected points of one structure and shape ({dim} coordinates, "
+                    f"as the first); got {x.shape[0]} coordinates"
                 )
             value, g_ad, g_fd = (np.asarray(v, dtype=np.float64) for v in evaluate(x))
             floor = (1e-6 * max(1.0, abs(float(value))) if np.isfinite(value) else 1e-6) \
@@ -445,36 +379,31 @@ def score_agreement(
 
 def assert_score_matches(
     log_p: LogDensity,
+    region: Region | None = None,
     *,
     tolerance: float = 1e-4,
     data: Any = None,
-    sampler: Sampler | None = None,
-    around: Any = None,
-    scale: float = 0.1,
-    num_points: int = 16,
-    key: jax.Array | None = None,
     step: float = 1e-5,
     atol: float | None = None,
     compiled: bool = True,
+    **where: Any,
 ) -> ScoreAgreement:
     """Raise ``AssertionError`` when the score of ``log_p`` disagrees with finite differences.
 
-    Runs :func:`score_agreement` (same arguments) and fails when its worst relative error
-    exceeds ``tolerance``. With the default step and Richardson refinement a correct
-    gradient typically gives errors near 1e-9; a wrong factor of 2 gives 0.5 and a dropped
-    term gives errors of order 1.
+    Runs :func:`score_agreement` (same arguments; ``region`` or the keywords ``around=`` /
+    ``sampler=``, ``scale=``, ``num_points=`` (default 16), ``key=``) and fails when its
+    worst relative error exceeds ``tolerance``. With the default step and Richardson
+    refinement a correct gradient typically gives errors near 1e-9; a wrong factor of 2
+    gives 0.5 and a dropped term gives errors of order 1.
 
     Returns
     -------
     ScoreAgreement
         When the check passes.
     """
-    if not float(tolerance) > 0.0:
-        raise ValueError(f"tolerance: expected a positive number; got {tolerance!r}")
-    report = score_agreement(
-        log_p, data=data, sampler=sampler, around=around, scale=scale,
-        num_points=num_points, key=key, step=step, atol=atol, compiled=compiled,
-    )
+    region = Region.from_keywords(where, region=region, caller="assert_score_matches")
+    tolerance = positive("tolerance", tolerance)
+    report = score_agreement(log_p, region, data=data, step=step, atol=atol, compiled=compiled)
     if not report.worst_error <= tolerance:
         raise AssertionError(
             f"score of log_p disagrees with finite differences: parameter "
@@ -503,21 +432,21 @@ def assert_scalar_output(log_p: LogDensity, point: Any, *, data: Any = None) -> 
 
 def assert_finite_on_region(
     log_p: LogDensity,
+    region: Region | None = None,
     *,
     data: Any = None,
-    sampler: Sampler | None = None,
-    around: Any = None,
-    scale: float = 0.1,
-    num_points: int = 32,
-    key: jax.Array | None = None,
+    **where: Any,
 ) -> None:
     """Raise ``AssertionError`` if ``log_p`` is NaN or infinite at a point of the region.
 
-    The region is given by ``sampler`` or by ``around`` and ``scale`` (see the module
-    docstring). Each point is evaluated eagerly, so a failure here is not a compilation
-    artefact. ``-inf`` counts as a failure too: the region should lie inside the support.
+    The region is ``region`` (``Region.near(point, scale)`` or ``Region.drawn(sampler)``) or
+    the same given as keywords ``around=`` / ``sampler=``, ``scale=``, ``num_points=``,
+    ``key=`` (see the module docstring); 32 points unless it sets ``num_points``. Each point
+    is evaluated eagerly, so a failure here is not a compilation artefact. ``-inf`` counts as
+    a failure too: the region should lie inside the support.
     """
-    _finite_at(log_p, _region_points(key, num_points, sampler, around, scale), data)
+    region = Region.from_keywords(where, region=region, caller="assert_finite_on_region")
+    _finite_at(log_p, region.points(32), data)
 
 
 def _finite_at(log_p, points: list, data) -> None:
@@ -552,7 +481,7 @@ def assert_jit_matches_eager(
         raise AssertionError(
             f"log_p fails under jax.jit: {type(exc).__name__}: {_first_line(exc)}"
         ) from exc
-    tol = _default_rtol(eager) if rtol is None else float(rtol)
+    tol = _default_rtol(eager) if rtol is None else positive("rtol", rtol)
     if np.shape(compiled) != np.shape(eager) or not _agree(compiled, eager, tol):
         raise AssertionError(
             f"log_p gives different values under jax.jit ({np.asarray(compiled)}) and eagerly "
@@ -562,22 +491,24 @@ def assert_jit_matches_eager(
 
 def assert_vmap_matches_loop(
     log_p: LogDensity,
+    region: Region | None = None,
     *,
     data: Any = None,
-    sampler: Sampler | None = None,
-    around: Any = None,
-    scale: float = 0.1,
-    num_points: int = 8,
-    key: jax.Array | None = None,
     rtol: float | None = None,
+    **where: Any,
 ) -> None:
     """Raise ``AssertionError`` if ``jax.vmap(log_p)`` over a batch of points fails, has the
     wrong shape, or differs from evaluating the points one at a time.
 
-    The batch is ``num_points`` points of the region stacked on a new leading axis; ``data``
-    is shared (``in_axes=(0, None)``).
+    The batch is the points of the region (``region``, or the keywords ``around=`` /
+    ``sampler=``, ``scale=``, ``num_points=``, ``key=``; 8 points unless it sets
+    ``num_points``) stacked on a new leading axis; ``data`` is shared
+    (``in_axes=(0, None)``). Agreement: ``|batched - single| <= rtol * max(1, |batched|,
+    |single|)``, ``rtol`` defaulting to ``sqrt(eps)`` of the output dtype.
     """
-    _vmap_at(log_p, _region_points(key, num_points, sampler, around, scale), data, rtol)
+    region = Region.from_keywords(where, region=region, caller="assert_vmap_matches_loop")
+    rtol = None if rtol is None else positive("rtol", rtol)
+    _vmap_at(log_p, region.points(8), data, rtol)
 
 
 def _vmap_at(log_p, points: list, data, rtol) -> None:
@@ -599,7 +530,7 @@ def _vmap_at(log_p, points: list, data, rtol) -> None:
             f"jax.vmap(log_p) over {len(points)} points returned shape {batched.shape}; "
             f"expected ({len(points)},)"
         )
-    tol = _default_rtol(singles) if rtol is None else float(rtol)
+    tol = _default_rtol(singles) if rtol is None else rtol
     for i in range(len(points)):
         if not _agree(batched[i], singles[i], tol):
             raise AssertionError(
@@ -613,9 +544,8 @@ def assert_deterministic(
 ) -> None:
     """Raise ``AssertionError`` unless ``repeats`` eager calls at the same point give
     bit-identical values (a log-density must not draw random numbers or keep state)."""
-    if not isinstance(repeats, (int, np.integer)) or repeats < 2:
-        raise ValueError(f"repeats: expected an integer >= 2; got {repeats!r}")
-    values = [np.asarray(_call(log_p, point, data)) for _ in range(int(repeats))]
+    repeats = integer("repeats", repeats, minimum=2)
+    values = [np.asarray(_call(log_p, point, data)) for _ in range(repeats)]
     for v in values[1:]:
         if v.shape != values[0].shape or not np.array_equal(v, values[0], equal_nan=True):
             raise AssertionError(
@@ -630,13 +560,13 @@ def _row_count(data) -> int:
     for path, leaf in jax.tree_util.tree_flatten_with_path(data)[0]:
         shape = np.shape(leaf)
         if len(shape) >= 1:
-            sizes[_path_label(path) if path else "data"] = shape[0]
+            sizes[path_label(path) if path else "data"] = shape[0]
     if not sizes:
         raise ValueError("data: expected at least one array leaf with a leading row axis; got none")
     if len(set(sizes.values())) != 1:
         raise ValueError(
-            "data: to permute rows every array leaf must share the leading (row) axis; got "
-            + ", ".join(f"'{k}': {v}" for k, v in sizes.items())
+            "data: expected every array leaf to share the leading (row) axis, to permute rows; "
+            "got leading sizes " + ", ".join(f"'{k}': {v}" for k, v in sizes.items())
             + ". Put per-model constants in a closure instead of in data."
         )
     return int(next(iter(sizes.values())))
@@ -664,9 +594,9 @@ def assert_exchangeable_rows(
         raise ValueError("data: expected the data pytree whose rows are to be permuted; got None")
     n = _row_count(data)
     if n < 2:
-        raise ValueError(f"data: need at least 2 rows to permute; got {n}")
+        raise ValueError(f"data: expected at least 2 rows to permute; got {n}")
     # a random single cycle through all rows: every row moves (no fixed points)
-    order = np.asarray(jax.random.permutation(_default_key(key), n))
+    order = np.asarray(jax.random.permutation(default_key() if key is None else key, n))
     perm = np.empty(n, dtype=np.int64)
     perm[order] = np.roll(order, -1)
 
@@ -676,7 +606,7 @@ def assert_exchangeable_rows(
     shuffled = jax.tree_util.tree_map(permute, data)
     a = np.asarray(_call(log_p, point, data))
     b = np.asarray(_call(log_p, point, shuffled))
-    tol = _default_rtol(a) if rtol is None else float(rtol)
+    tol = _default_rtol(a) if rtol is None else positive("rtol", rtol)
     if a.shape != b.shape or not _agree(a, b, tol):
         raise AssertionError(
             f"log_p changes when the {n} data rows are permuted ({a} vs {b}, rtol {tol:.2g}) "
@@ -717,33 +647,33 @@ class HealthReport:
 
 def check_health(
     log_p: LogDensity,
+    region: Region | None = None,
     *,
     data: Any = None,
-    sampler: Sampler | None = None,
-    around: Any = None,
-    scale: float = 0.1,
-    num_points: int = 16,
     exchangeable: bool = False,
-    key: jax.Array | None = None,
+    **where: Any,
 ) -> HealthReport:
     """Run every health check of ``log_p`` and return a :class:`HealthReport`.
 
-    Checks (keys of ``report.results``): ``"scalar"``, ``"finite"`` (on ``num_points``
-    region points), ``"jit"``, ``"vmap"`` (on up to 8 region points), ``"deterministic"``
-    and, when ``exchangeable=True``, ``"exchangeable"``. Point checks use the first region
-    point. A check that raises anything (an ``AssertionError`` or an error from ``log_p``
-    itself) is recorded as failed with the message; the report never raises, call
-    ``report.assert_passed()`` for that.
+    Checks (keys of ``report.results``): ``"scalar"``, ``"finite"`` (on the region's points,
+    16 unless it sets ``num_points``), ``"jit"``, ``"vmap"`` (on up to 8 region points),
+    ``"deterministic"`` and, when ``exchangeable=True``, ``"exchangeable"``. Point checks use
+    the first region point. The region is ``region`` or the keywords ``around=`` /
+    ``sampler=``, ``scale=``, ``num_points=``, ``key=``; its key ``k`` (default
+    ``jax.random.key(0)``) is split in two, ``(k_points, k_permutation) = split(k)``, one for
+    the points and one for the permutation of the rows. A check that raises anything (an
+    ``AssertionError`` or an error from ``log_p`` itself) is recorded as failed with the
+    message; the report never raises, call ``report.assert_passed()`` for that.
     """
-    if not callable(log_p):
-        raise TypeError(f"log_p: expected a callable; got {type(log_p).__name__}")
+    callable_value("log_p", log_p)
+    region = Region.from_keywords(where, region=region, caller="check_health")
+    exchangeable = boolean("exchangeable", exchangeable)
     if exchangeable and data is None:
-        raise ValueError("exchangeable=True needs `data` (the rows to permute); got data=None")
+        raise fail("data", "the data pytree whose rows are permuted (exchangeable=True)", data)
     if exchangeable:
         _row_count(data)  # bad data layouts are usage errors: raise them now
-    key = _default_key(key)
-    k_region, k_perm = jax.random.split(key)
-    points = _region_points(k_region, num_points, sampler, around, scale)
+    k_region, k_perm = jax.random.split(region.key_or_default())
+    points = replace(region, key=k_region).points(16)
     point = points[0]
 
     def run(check, *args, **kwargs):
@@ -778,11 +708,10 @@ def points_near(point: Any, radius: float = 0.1):
     import hypothesis.strategies as st
     from hypothesis.extra import numpy as hnp
 
-    if not float(radius) >= 0.0:
-        raise ValueError(f"radius: expected a non-negative number; got {radius!r}")
+    radius = non_negative("radius", radius)
     leaves, treedef = jax.tree_util.tree_flatten(point)
     if not leaves:
-        raise ValueError("point: expected a pytree with at least one array leaf; got none")
+        raise fail("point", "a pytree with at least one array leaf", point)
     bases = []
     for leaf in leaves:
         arr = np.asarray(leaf)

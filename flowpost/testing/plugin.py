@@ -12,19 +12,24 @@ Fixtures
     (default 0). The same in every test, so a failure reproduces.
 
 ``fp_score_check``
-    A :class:`ScoreCheck`: ``fp_score_check(log_p, data=..., around=... or sampler=...)``
+    A :class:`ScoreCheck`: ``fp_score_check(log_p, Region.drawn(prior_draw), data=...)`` (or
+    the keyword shortcut ``fp_score_check(log_p, data=..., around=... or sampler=...)``)
     compares the autodiff score of ``log_p`` with central finite differences in float64 (one
-    Richardson refinement; see :mod:`flowpost.testing.checks`) at ``num_points`` points and
+    Richardson refinement; see :mod:`flowpost.testing.checks`) at the points of the
+    :class:`~flowpost.testing.Region` (``--flowpost-score-points`` of them, default 16,
+    unless the region sets ``num_points``; drawn with ``fp_key`` unless it sets ``key``) and
     raises ``AssertionError`` naming the worst parameter when the relative error exceeds the
     tolerance (``--flowpost-score-tol``, default ``1e-4``; a correct gradient gives about
     ``1e-9``, a wrong factor of two ``0.5``). Returns the :class:`ScoreAgreement`;
     ``check=False`` returns it without asserting.
 
 ``fp_health_check``
-    A :class:`HealthCheck`: ``fp_health_check(log_p, data=..., around=..., exchangeable=True)``
-    runs every health check of :func:`flowpost.testing.check_health` (scalar output, finite on
-    the region, ``jit`` agrees with eager, ``vmap`` agrees with a loop, deterministic, and,
-    when ``exchangeable=True``, invariance under a permutation of the data rows) and raises
+    A :class:`HealthCheck`: ``fp_health_check(log_p, Region.near(point), data=...,
+    exchangeable=True)`` (or ``around=point``) runs, on the region's points (16 unless it
+    sets ``num_points``; drawn with ``fp_key`` unless it sets ``key``), every health check of
+    :func:`flowpost.testing.check_health` (scalar output, finite on the region, ``jit`` agrees
+    with eager, ``vmap`` agrees with a loop, deterministic, and, when ``exchangeable=True``,
+    invariance under a permutation of the data rows) and raises
     ``AssertionError`` listing every failed check. Returns the :class:`HealthReport`;
     ``check=False`` returns it without asserting.
 
@@ -87,9 +92,12 @@ The objects behind the fixtures (:class:`ScoreCheck`, :class:`HealthCheck`,
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
 import pytest
+
+if TYPE_CHECKING:  # pragma: no cover - the region module is imported when a check runs
+    from .region import Region
 
 __all__ = [
     "Settings", "ScoreCheck", "HealthCheck", "CalibrationRun", "MomentCheck", "ReferenceFamilies",
@@ -242,54 +250,59 @@ def _settings(request: pytest.FixtureRequest) -> Settings:
 
 # ----------------------------------------------------------------------------- helpers given to tests
 class ScoreCheck:
-    """Callable score check with the session's tolerance and key (fixture ``fp_score_check``).
+    """Callable score check with the session's tolerance, number of points and key (fixture
+    ``fp_score_check``).
 
-    ``check(log_p, *, data=None, around=None, sampler=None, scale=0.1, num_points=None,
-    tolerance=None, key=None, step=1e-5, atol=None, compiled=True, check=True)``: arguments
-    as in :func:`flowpost.testing.score_agreement`; ``None`` takes the session's value.
+    ``check(log_p, region=None, *, data=None, tolerance=None, step=1e-5, atol=None,
+    compiled=True, check=True, **where)``: arguments as in
+    :func:`flowpost.testing.score_agreement`. The region is a
+    :class:`~flowpost.testing.Region` or its fields as keywords (``around=`` /
+    ``sampler=``, ``scale=``, ``num_points=``, ``key=``); a region that leaves
+    ``num_points`` or ``key`` unset gets the session's (``--flowpost-score-points``,
+    ``fp_key``), and ``tolerance=None`` takes ``--flowpost-score-tol``.
     """
 
     def __init__(self, tolerance: float, num_points: int, key):
-        self.tolerance = float(tolerance)
-        self.num_points = int(num_points)
+        from .._validate import integer, positive
+
+        self.tolerance = positive("tolerance", tolerance)
+        self.num_points = integer("num_points", num_points, minimum=1)
         self.key = key
 
     def __call__(
         self,
         log_p: Callable[..., Any],
+        region: Region | None = None,
         *,
         data: Any = None,
-        around: Any = None,
-        sampler: Callable | None = None,
-        scale: float = 0.1,
-        num_points: int | None = None,
         tolerance: float | None = None,
-        key=None,
         step: float = 1e-5,
         atol: float | None = None,
         compiled: bool = True,
         check: bool = True,
+        **where: Any,
     ):
         from .checks import assert_score_matches, score_agreement
+        from .region import Region
 
-        kwargs = dict(
-            data=data, sampler=sampler, around=around, scale=scale,
-            num_points=self.num_points if num_points is None else num_points,
-            key=self.key if key is None else key, step=step, atol=atol, compiled=compiled,
-        )
+        region = Region.from_keywords(where, region=region, caller="fp_score_check")
+        region = region.with_defaults(num_points=self.num_points, key=self.key)
+        kwargs = dict(data=data, step=step, atol=atol, compiled=compiled)
         if not check:
-            return score_agreement(log_p, **kwargs)
+            return score_agreement(log_p, region, **kwargs)
         return assert_score_matches(
-            log_p, tolerance=self.tolerance if tolerance is None else tolerance, **kwargs
+            log_p, region, tolerance=self.tolerance if tolerance is None else tolerance, **kwargs
         )
 
 
 class HealthCheck:
     """Callable health checks with the session's key (fixture ``fp_health_check``).
 
-    ``check(log_p, *, data=None, around=None, sampler=None, scale=0.1, num_points=16,
-    exchangeable=False, key=None, check=True)``: arguments as in
-    :func:`flowpost.testing.check_health`.
+    ``check(log_p, region=None, *, data=None, exchangeable=False, check=True, **where)``:
+    arguments as in :func:`flowpost.testing.check_health`. The region is a
+    :class:`~flowpost.testing.Region` or its fields as keywords (``around=`` /
+    ``sampler=``, ``scale=``, ``num_points=`` (default 16), ``key=``); a region that leaves
+    ``key`` unset gets the session's (``fp_key``).
     """
 
     def __init__(self, key):
@@ -298,22 +311,19 @@ class HealthCheck:
     def __call__(
         self,
         log_p: Callable[..., Any],
+        region: Region | None = None,
         *,
         data: Any = None,
-        around: Any = None,
-        sampler: Callable | None = None,
-        scale: float = 0.1,
-        num_points: int = 16,
         exchangeable: bool = False,
-        key=None,
         check: bool = True,
+        **where: Any,
     ):
         from .checks import check_health
+        from .region import Region
 
-        report = check_health(
-            log_p, data=data, sampler=sampler, around=around, scale=scale,
-            num_points=num_points, exchangeable=exchangeable, key=self.key if key is None else key,
-        )
+        region = Region.from_keywords(where, region=region, caller="fp_health_check")
+        report = check_health(log_p, region.with_defaults(key=self.key), data=data,
+                              exchangeable=exchangeable)
         if check:
             report.assert_passed()
         return report
@@ -365,10 +375,12 @@ class CalibrationRun:
     """
 
     def __init__(self, n_datasets: int, steps: int, bins: int, alpha: float, key):
-        self.n_datasets = int(n_datasets)
-        self.steps = int(steps)
-        self.bins = int(bins)
-        self.alpha = float(alpha)
+        from .._validate import integer, open_unit
+
+        self.n_datasets = integer("n_datasets", n_datasets, minimum=1)
+        self.steps = integer("steps", steps, minimum=1)
+        self.bins = integer("bins", bins, minimum=_MIN_BINS)
+        self.alpha = open_unit("alpha", alpha)
         self.key = key
 
     @property
@@ -381,9 +393,9 @@ class CalibrationRun:
         import jax
         import jax.numpy as jnp
 
-        n = self.draws if n is None else int(n)
-        if n < 1:
-            raise ValueError(f"n: expected a positive number of particles; got {n}")
+        from .._validate import integer
+
+        n = self.draws if n is None else integer("n", n, minimum=1)
 
         def rep(leaf):
             arr = jnp.asarray(leaf)
@@ -410,11 +422,10 @@ class CalibrationRun:
         key=None,
         check: bool = True,
     ):
+        from .._validate import open_unit
         from .calibration import calibrate
 
-        alpha = self.alpha if alpha is None else float(alpha)
-        if not 0 < alpha < 1:
-            raise ValueError(f"alpha: expected a number strictly between 0 and 1; got {alpha!r}")
+        alpha = self.alpha if alpha is None else open_unit("alpha", alpha)
         report = calibrate(
             log_p, prior_draw, simulate, stepper, init,
             key=self.key if key is None else key,
@@ -448,7 +459,9 @@ class MomentCheck:
     """
 
     def __init__(self, threshold: float):
-        self.threshold = float(threshold)
+        from .._validate import positive
+
+        self.threshold = positive("threshold", threshold)
 
     @staticmethod
     def _draws(draws):

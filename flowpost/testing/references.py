@@ -10,7 +10,7 @@ common interface of :class:`ClosedFormModel`:
     of ``theta``.
 ``supports``
     Class attribute: dict from theta key to a support name understood by
-    :func:`flowpost.support.as_support`: ``"real"``, ``"positive"``, ``"unit"`` (the open
+    :func:`flowpost.model.as_support`: ``"real"``, ``"positive"``, ``"unit"`` (the open
     interval (0, 1)) or ``"simplex"`` (a length-K probability vector).
 ``posterior_parameters(data)``, ``posterior(data)``
     Exact posterior as a dict of parameters and as a frozen ``scipy.stats`` distribution.

@@ -23,26 +23,10 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .support import Real, as_support
+from ._labels import ROOT_NAME, coordinate_labels, element_labels, path_label
+from ._support import Real, as_support
 
 __all__ = ["Target", "Layout", "as_target"]
-
-ROOT_NAME = "theta"  # the name of a parameter given as one plain array
-
-
-def _path_name(path) -> str:
-    parts = []
-    for p in path:
-        if isinstance(p, jax.tree_util.DictKey):
-            parts.append(str(p.key))
-        elif isinstance(p, jax.tree_util.SequenceKey):
-            parts.append(str(p.idx))
-        elif isinstance(p, jax.tree_util.GetAttrKey):
-            parts.append(str(p.name))
-        else:  # pragma: no cover - other key kinds
-            parts.append(str(p))
-    return ".".join(parts) if parts else ROOT_NAME
-
 
 @dataclass(frozen=True)
 class _Slot:
@@ -67,24 +51,18 @@ class Layout:
         return tuple(s.name for s in self.slots)
 
     def element_names(self) -> list[str]:
-        """One label per constrained scalar, e.g. ``sigma``, ``w[0]``, ``m[1,2]``."""
-        out = []
+        """One label per constrained scalar, e.g. ``sigma``, ``w[0]``, ``m[1,2]``
+        (:mod:`flowpost.model._labels`)."""
+        out: list[str] = []
         for s in self.slots:
-            if s.shape == ():
-                out.append(s.name)
-            else:
-                for idx in np.ndindex(*s.shape):
-                    out.append(f"{s.name}[{','.join(map(str, idx))}]")
+            out.extend(element_labels(s.name, s.shape))
         return out
 
     def coordinate_names(self) -> list[str]:
         """One label per unconstrained coordinate (simplex parameters lose one entry)."""
-        out = []
+        out: list[str] = []
         for s in self.slots:
-            if s.size == 1 and s.shape == ():
-                out.append(s.name)
-            else:
-                out.extend(f"{s.name}[{i}]" for i in range(s.size))
+            out.extend(coordinate_labels(s.name, s.shape, s.size))
         return out
 
     def unflatten(self, u: jax.Array):
@@ -111,7 +89,7 @@ def _build_layout(init, support) -> tuple[Layout, int]:
     slots, start = [], 0
     names = []
     for path, leaf in leaves_with_path:
-        name = _path_name(path)
+        name = path_label(path)
         arr = np.asarray(leaf) if not isinstance(leaf, jax.Array) else leaf
         if arr.ndim < 1:
             raise ValueError(

@@ -16,8 +16,11 @@ a nonsmooth log-prior, exact noise) need both the map and the value
 * ``term.value(x)``: :math:`g` of each row (shape ``(N,)``, or ``()`` for a
   vector), ``+inf`` outside the set for an indicator function.
 
-Terms are frozen, hashable dataclasses, so they can be static arguments of
-:func:`jax.jit`. Closed forms follow "Proximal algorithms" (Foundations and
+Terms are frozen dataclasses registered as JAX pytrees: their numbers (the
+penalty weights, the box bounds, the inner solver's tolerance) are traced
+leaves, so a term can be an ordinary argument of a jitted function and a new
+weight never recompiles; their structure (a group layout, a user's callables)
+is static. Closed forms follow "Proximal algorithms" (Foundations and
 Trends in Optimization, 2014), sections 6.1 and 6.5:
 
 ====================  ===========================================  ==========================================
@@ -37,15 +40,18 @@ numerically with the inner solver when ``g`` is smooth and has no closed form.
 
 from __future__ import annotations
 
+import math
 import numbers
-from dataclasses import dataclass
 from typing import Any, Callable, Sequence
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+from jax.core import Tracer
 
-from flowpost.inner import InnerSolver, SolveReport, minimise
+from .._pytree import pytree_dataclass, static
+from .._validate import callable_value, fail, instance, non_negative, positive, real
+from ._inner import InnerSolver, SolveReport, minimise
 
 __all__ = [
     "ProxTerm",
@@ -68,61 +74,71 @@ __all__ = [
 def _as_points(v: Any, name: str) -> jax.Array:
     v = jnp.asarray(v)
     if not jnp.issubdtype(v.dtype, jnp.floating):
-        raise TypeError(f"{name} must be a floating-point array; got dtype {v.dtype}")
+        raise TypeError(f"{name}: expected a floating-point array; got dtype {v.dtype}")
     if v.ndim not in (1, 2):
-        raise ValueError(f"{name} must have shape (d,) or (N, d); got shape {v.shape}")
+        raise ValueError(f"{name}: expected an array of shape (d,) or (N, d); got shape {v.shape}")
     return v
 
 
 def _as_step(h: Any, dtype) -> jax.Array:
-    h_arr = jnp.asarray(h)
-    if h_arr.shape != ():
-        raise ValueError(f"h must be a scalar step size; got shape {h_arr.shape}")
-    if not (jnp.issubdtype(h_arr.dtype, jnp.floating) or jnp.issubdtype(h_arr.dtype, jnp.integer)):
-        raise TypeError(f"h must be a real number; got dtype {h_arr.dtype}")
+    """The step ``h`` as a scalar of ``dtype``; a concrete ``h`` must be finite and > 0.
+
+    A traced ``h`` (inside ``jit`` / ``vmap``) is only checked for shape and dtype:
+    its value is not known here, and it is never converted with ``float``.
+    """
+    if isinstance(h, Tracer):
+        if h.shape != ():
+            raise fail("h", "a scalar step size", h)
+        if not (jnp.issubdtype(h.dtype, jnp.floating) or jnp.issubdtype(h.dtype, jnp.integer)):
+            raise TypeError(f"h: expected a real scalar step size; got dtype {h.dtype}")
+    else:
+        if np.ndim(h) != 0:
+            raise fail("h", "a scalar step size", h)
+        positive("h", h)
+    return jnp.asarray(h).astype(dtype)
+
+
+def _vector(name: str, values: Any, check: Callable[[str, Any], float]) -> tuple[float, ...]:
+    """A non-empty 1-D sequence (tuple, list, NumPy or JAX array) checked entry by entry."""
+    if isinstance(values, (np.ndarray, jax.Array)):
+        if values.ndim != 1:
+            raise fail(name, "a non-empty 1-D sequence of numbers", values)
+        entries = list(np.asarray(values))
+    elif isinstance(values, Sequence) and not isinstance(values, (str, bytes)):
+        entries = list(values)
+    else:
+        raise fail(name, "a non-empty 1-D sequence of numbers", values, TypeError)
+    if not entries:
+        raise fail(name, "a non-empty 1-D sequence of numbers", values)
+    return tuple(check(f"{name}[{i}]", e) for i, e in enumerate(entries))
+
+
+def _bound_number(name: str, value: Any) -> float:
+    """A real number or an infinite bound; ``nan`` is refused."""
+    expected = "a real number (-inf or inf allowed, not nan)"
     try:
-        concrete = float(h_arr)
-    except (jax.errors.ConcretizationTypeError, TypeError):
-        concrete = None  # traced inside jit: cannot be checked here
-    if concrete is not None and not concrete > 0.0:
-        raise ValueError(f"h must be > 0; got {concrete!r}")
-    return h_arr.astype(dtype)
-
-
-def _real(name: str, value: Any, *, minimum: float | None = None) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        try:
-            value = float(np.asarray(value).item())
-        except (TypeError, ValueError):
-            raise TypeError(f"{name} must be a real number; got {type(value).__name__}") from None
-    value = float(value)
-    if value != value:
-        raise ValueError(f"{name} must not be NaN")
-    if minimum is not None and value < minimum:
-        raise ValueError(f"{name} must be >= {minimum}; got {value!r}")
-    return value
-
-
-def _real_vector(name: str, values: Any, *, minimum: float | None = None) -> tuple[float, ...]:
-    arr = np.asarray(values, dtype=float)
-    if arr.ndim != 1 or arr.size == 0:
-        raise ValueError(f"{name} must be a non-empty 1-D sequence of numbers; got shape {arr.shape}")
-    if np.isnan(arr).any():
-        raise ValueError(f"{name} must not contain NaN")
-    if minimum is not None and (arr < minimum).any():
-        raise ValueError(f"{name} must be >= {minimum} elementwise; got min {arr.min()!r}")
-    return tuple(float(a) for a in arr)
+        return real(name, value, expected=expected)
+    except ValueError:
+        # ``real`` has already checked the kind of value; only an infinity is let through
+        v = float(np.asarray(value))
+        if math.isinf(v):
+            return v
+        raise
 
 
 def _bound(name: str, value: Any) -> float | tuple[float, ...]:
-    if isinstance(value, numbers.Real) or np.ndim(value) == 0:
-        return _real(name, value)
-    return _real_vector(name, value)
+    if isinstance(value, (np.ndarray, jax.Array)) and value.ndim == 0:
+        return _bound_number(name, value)
+    if isinstance(value, (np.ndarray, jax.Array, Sequence)) and not isinstance(value, (str, bytes)):
+        return _vector(name, value, _bound_number)
+    return _bound_number(name, value)
 
 
 def _check_dim(name: str, length: int, d: int) -> None:
     if length != d:
-        raise ValueError(f"{name} has {length} entries but the points have d = {d} coordinates")
+        raise ValueError(
+            f"{name}: expected {d} entries (one per coordinate of the points); got {length}"
+        )
 
 
 # ---------------------------------------------------------------------------
@@ -130,13 +146,16 @@ def _check_dim(name: str, length: int, d: int) -> None:
 # ---------------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class ProxTerm:
     r"""Base class: a function :math:`g` with its proximal map.
 
     Subclasses implement ``_map(v, h)`` and ``_value(x)`` on a validated
     floating array of shape ``(..., d)`` and a scalar step ``h`` of the same
-    dtype.
+    dtype, and are declared with ``@pytree_dataclass`` (numbers as leaves,
+    structure as :func:`~flowpost._pytree.static` fields) so that a term can be
+    an ordinary argument of a jitted function. ``_map`` and ``_value`` must work
+    when the leaves are tracers: no ``float(...)`` or ``if`` on them.
     """
 
     def __call__(self, v: jax.Array, h: float | jax.Array) -> jax.Array:
@@ -170,7 +189,7 @@ class ProxTerm:
         raise NotImplementedError
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class L1Penalty(ProxTerm):
     r"""Scaled L1 norm :math:`g(x) = \lambda \lVert x\rVert_1`.
 
@@ -180,13 +199,13 @@ class L1Penalty(ProxTerm):
     Parameters
     ----------
     weight : float
-        :math:`\lambda \ge 0`.
+        :math:`\lambda \ge 0`, finite (a traced leaf).
     """
 
     weight: float = 1.0
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "weight", _real("weight", self.weight, minimum=0.0))
+        object.__setattr__(self, "weight", non_negative("weight", self.weight))
 
     def _map(self, v, h):
         t = h * jnp.asarray(self.weight, v.dtype)
@@ -196,7 +215,7 @@ class L1Penalty(ProxTerm):
         return jnp.asarray(self.weight, x.dtype) * jnp.sum(jnp.abs(x), axis=-1)
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class WeightedL1Penalty(ProxTerm):
     r"""Weighted L1 norm :math:`g(x) = \sum_i w_i |x_i|` with :math:`w_i \ge 0`.
 
@@ -205,14 +224,15 @@ class WeightedL1Penalty(ProxTerm):
 
     Parameters
     ----------
-    weights : sequence of d non-negative floats
-        Stored as a tuple (so the term stays hashable).
+    weights : sequence of d non-negative finite floats
+        Stored as a tuple of Python floats: ``d`` traced leaves (the length is
+        structure, the values are not).
     """
 
     weights: tuple[float, ...] = ()
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "weights", _real_vector("weights", self.weights, minimum=0.0))
+        object.__setattr__(self, "weights", _vector("weights", self.weights, non_negative))
 
     def _w(self, x):
         _check_dim("weights", len(self.weights), x.shape[-1])
@@ -225,7 +245,7 @@ class WeightedL1Penalty(ProxTerm):
         return jnp.sum(self._w(x) * jnp.abs(x), axis=-1)
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class NonNegative(ProxTerm):
     r"""Indicator of the non-negative orthant, :math:`g(x) = 0` if all :math:`x_i \ge 0`, else :math:`+\infty`.
 
@@ -241,7 +261,7 @@ class NonNegative(ProxTerm):
         return jnp.where(inside, jnp.zeros((), x.dtype), jnp.asarray(jnp.inf, x.dtype))
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class Box(ProxTerm):
     r"""Indicator of the box :math:`\{x : l \le x \le u\}` (coordinate-wise).
 
@@ -251,7 +271,9 @@ class Box(ProxTerm):
     Parameters
     ----------
     lower, upper : float or sequence of d floats
-        Bounds with ``lower <= upper`` elementwise; ``-inf`` / ``inf`` allowed.
+        Bounds with ``lower <= upper`` elementwise; ``-inf`` / ``inf`` allowed,
+        ``nan`` refused. Traced leaves (a sequence is stored as a tuple of
+        floats, one leaf per coordinate).
     """
 
     lower: float | tuple[float, ...] = 0.0
@@ -261,11 +283,9 @@ class Box(ProxTerm):
         lo = _bound("lower", self.lower)
         hi = _bound("upper", self.upper)
         if isinstance(lo, tuple) and isinstance(hi, tuple) and len(lo) != len(hi):
-            raise ValueError(
-                f"lower and upper must have the same length; got {len(lo)} and {len(hi)}"
-            )
+            raise fail("upper", f"a sequence of the same length as lower ({len(lo)})", self.upper)
         if np.any(np.asarray(lo) > np.asarray(hi)):
-            raise ValueError(f"lower must be <= upper elementwise; got lower={lo}, upper={hi}")
+            raise fail("upper", f"bounds >= lower = {lo} elementwise", hi)
         object.__setattr__(self, "lower", lo)
         object.__setattr__(self, "upper", hi)
 
@@ -286,7 +306,7 @@ class Box(ProxTerm):
         return jnp.where(inside, jnp.zeros((), x.dtype), jnp.asarray(jnp.inf, x.dtype))
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class GroupL1Penalty(ProxTerm):
     r"""Sum of group Euclidean norms :math:`g(x) = \lambda \sum_G \lVert x_G\rVert_2`.
 
@@ -306,51 +326,55 @@ class GroupL1Penalty(ProxTerm):
         Either ``((0, 1), (2, 3, 4))`` -- disjoint tuples of coordinate
         indices -- or ``(0, 0, 1, 1, 1)`` -- one group id per coordinate
         (equal ids form a group; a negative id leaves that coordinate
-        unpenalised). Stored in the normalised tuple form.
+        unpenalised). Stored in the normalised tuple form; static (the layout
+        fixes the shapes of the computation).
     weight : float
-        :math:`\lambda \ge 0`.
+        :math:`\lambda \ge 0`, finite (a traced leaf).
     """
 
-    groups: tuple = ()
+    groups: tuple = static(())
     weight: float = 1.0
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "weight", _real("weight", self.weight, minimum=0.0))
+        object.__setattr__(self, "weight", non_negative("weight", self.weight))
+        layout = "a non-empty tuple of index tuples or a sequence of integer group ids"
         groups = self.groups
         if isinstance(groups, (np.ndarray, jax.Array)):
             groups = np.asarray(groups).tolist()
-        if not isinstance(groups, Sequence) or isinstance(groups, str) or len(groups) == 0:
-            raise ValueError(
-                "groups must be a non-empty tuple of index tuples or a sequence of integer "
-                f"group ids; got {self.groups!r}"
-            )
+        if not isinstance(groups, Sequence) or isinstance(groups, (str, bytes)):
+            raise fail("groups", layout, self.groups, TypeError)
+        if len(groups) == 0:
+            raise fail("groups", layout, self.groups)
         is_int = [isinstance(g, numbers.Integral) and not isinstance(g, bool) for g in groups]
         if all(is_int):
             ids = tuple(int(g) for g in groups)
             if all(i < 0 for i in ids):
-                raise ValueError("groups (as group ids) must contain at least one id >= 0")
+                raise fail("groups", "group ids with at least one id >= 0", self.groups)
             object.__setattr__(self, "groups", ids)
             return
         if any(is_int):
-            raise ValueError(
-                "groups must be either all integers (group ids) or all index tuples; got a mix"
-            )
+            raise fail("groups", "either all integers (group ids) or all index tuples, not a mix",
+                       self.groups)
         norm: list[tuple[int, ...]] = []
         seen: set[int] = set()
         for k, g in enumerate(groups):
             if isinstance(g, (np.ndarray, jax.Array)):
                 g = np.asarray(g).tolist()
-            if not isinstance(g, Sequence) or len(g) == 0:
-                raise ValueError(f"groups[{k}] must be a non-empty tuple of indices; got {g!r}")
+            if not isinstance(g, Sequence) or isinstance(g, (str, bytes)):
+                raise fail(f"groups[{k}]", "a non-empty tuple of coordinate indices", g, TypeError)
+            if len(g) == 0:
+                raise fail(f"groups[{k}]", "a non-empty tuple of coordinate indices", g)
             idx = []
             for i in g:
-                if isinstance(i, bool) or not isinstance(i, numbers.Integral) or i < 0:
-                    raise ValueError(
-                        f"groups[{k}] must hold non-negative integer indices; got {i!r}"
-                    )
+                if isinstance(i, bool) or not isinstance(i, numbers.Integral):
+                    raise fail(f"groups[{k}]", "non-negative integer indices", g, TypeError)
+                if i < 0:
+                    raise fail(f"groups[{k}]", "non-negative integer indices", g)
                 if int(i) in seen:
-                    raise ValueError(
-                        f"groups must be disjoint; index {int(i)} appears twice (groups[{k}])"
+                    raise fail(
+                        f"groups[{k}]",
+                        f"indices in no earlier group (groups must be disjoint; {int(i)} repeats)",
+                        g,
                     )
                 seen.add(int(i))
                 idx.append(int(i))
@@ -381,9 +405,7 @@ class GroupL1Penalty(ProxTerm):
         ids = np.full(d, n_groups, dtype=np.int32)
         for k, g in enumerate(self.groups):
             if max(g) >= d:
-                raise ValueError(
-                    f"groups[{k}] refers to index {max(g)} but the points have d = {d} coordinates"
-                )
+                raise fail(f"groups[{k}]", f"indices < d = {d} (the points' dimension)", g)
             ids[list(g)] = k
         return ids, n_groups
 
@@ -396,8 +418,8 @@ class GroupL1Penalty(ProxTerm):
         norms, ids, n_groups = self._group_norms(v)
         t = h * jnp.asarray(self.weight, v.dtype)
         norm_i = norms[..., ids]
-        positive = norm_i > 0
-        factor = jnp.where(positive, 1.0 - t / jnp.where(positive, norm_i, 1.0), 0.0)
+        nonzero = norm_i > 0
+        factor = jnp.where(nonzero, 1.0 - t / jnp.where(nonzero, norm_i, 1.0), 0.0)
         factor = jnp.maximum(factor, 0.0)
         factor = jnp.where(ids == n_groups, jnp.ones((), v.dtype), factor)
         return (v * factor).astype(v.dtype)
@@ -407,7 +429,7 @@ class GroupL1Penalty(ProxTerm):
         return jnp.asarray(self.weight, x.dtype) * jnp.sum(norms[..., :n_groups], axis=-1)
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class UserProx(ProxTerm):
     r"""Wrap a user-supplied proximal map into the :class:`ProxTerm` interface.
 
@@ -424,27 +446,26 @@ class UserProx(ProxTerm):
 
     Notes
     -----
-    The term is hashable through the identity of the two functions: define
-    them once (not as fresh lambdas inside a loop) to avoid recompilation.
+    Both functions are static fields of the pytree, compared and hashed by
+    identity: define them once (not as fresh lambdas inside a loop) to avoid
+    recompilation.
     """
 
-    prox: Callable[[jax.Array, jax.Array], jax.Array]
-    value_fn: Callable[[jax.Array], jax.Array] | None = None
+    prox: Callable[[jax.Array, jax.Array], jax.Array] = static()
+    value_fn: Callable[[jax.Array], jax.Array] | None = static(None)
 
     def __post_init__(self) -> None:
-        if not callable(self.prox):
-            raise TypeError(f"prox must be callable as prox(v, h); got {type(self.prox).__name__}")
-        if self.value_fn is not None and not callable(self.value_fn):
-            raise TypeError(
-                f"value_fn must be callable or None; got {type(self.value_fn).__name__}"
-            )
+        callable_value("prox", self.prox, "a callable prox(v, h)")
+        if self.value_fn is not None:
+            callable_value("value_fn", self.value_fn, "None or a callable value_fn(x) -> scalar")
 
     def _map(self, v, h):
         def one(u):
             out = jnp.asarray(self.prox(u, h))
             if out.shape != u.shape:
                 raise ValueError(
-                    f"prox must return an array of the shape of its input {u.shape}; got {out.shape}"
+                    f"prox: expected a function returning an array of the shape of its input "
+                    f"{u.shape}; got shape {out.shape}"
                 )
             return out.astype(u.dtype)
 
@@ -457,16 +478,20 @@ class UserProx(ProxTerm):
                 "pass value_fn=... to UserProx"
             )
 
+        value_fn = self.value_fn
+
         def one(u):
-            out = jnp.asarray(self.value_fn(u))
+            out = jnp.asarray(value_fn(u))
             if out.shape != ():
-                raise ValueError(f"value_fn must return a scalar; got shape {out.shape}")
+                raise ValueError(
+                    f"value_fn: expected a function returning a scalar; got shape {out.shape}"
+                )
             return out.astype(u.dtype)
 
         return jax.vmap(one)(x) if x.ndim == 2 else one(x)
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class SmoothProx(ProxTerm):
     r"""Proximal map of a smooth :math:`g` computed numerically (see :func:`prox_by_solver`).
 
@@ -474,18 +499,17 @@ class SmoothProx(ProxTerm):
     ----------
     g : callable
         ``g(x) -> scalar`` for one point ``x`` of shape ``(d,)``, differentiable.
+        Static (compared and hashed by identity).
     solver : InnerSolver
-        Inner solver configuration.
+        Inner solver configuration; a pytree subtree whose numbers are traced.
     """
 
-    g: Callable[[jax.Array], jax.Array]
+    g: Callable[[jax.Array], jax.Array] = static()
     solver: InnerSolver = InnerSolver()
 
     def __post_init__(self) -> None:
-        if not callable(self.g):
-            raise TypeError(f"g must be callable as g(x) -> scalar; got {type(self.g).__name__}")
-        if not isinstance(self.solver, InnerSolver):
-            raise TypeError(f"solver must be an InnerSolver; got {type(self.solver).__name__}")
+        callable_value("g", self.g, "a callable g(x) -> scalar")
+        instance("solver", self.solver, InnerSolver, "an InnerSolver")
 
     def _map(self, v, h):
         x, _ = prox_by_solver(self.g, v, h, self.solver)
@@ -512,7 +536,7 @@ def prox_by_solver(
             h\,g(x) + \tfrac12 \lVert x - v\rVert^2
 
     (the usual objective multiplied by :math:`h`, same minimiser) with
-    :func:`flowpost.inner.minimise`, warm-started at :math:`x = v`. The
+    :func:`flowpost.numerics.minimise`, warm-started at :math:`x = v`. The
     residual is the max-abs norm of :math:`h\nabla g(x) + x - v`; for convex
     :math:`g` the objective is 1-strongly convex, so the returned point is
     within :math:`\sqrt{d}\,\mathrm{residual}` (Euclidean) of the exact
@@ -533,10 +557,8 @@ def prox_by_solver(
     report : SolveReport
         Per row (fields of shape ``(N,)`` for ``(N, d)`` input).
     """
-    if not callable(g):
-        raise TypeError(f"g must be callable as g(x) -> scalar; got {type(g).__name__}")
-    if not isinstance(solver, InnerSolver):
-        raise TypeError(f"solver must be an InnerSolver; got {type(solver).__name__}")
+    callable_value("g", g, "a callable g(x) -> scalar")
+    instance("solver", solver, InnerSolver, "an InnerSolver")
     v = _as_points(v, "v")
     h = _as_step(h, v.dtype)
 
@@ -544,7 +566,7 @@ def prox_by_solver(
         def objective(x):
             gx = jnp.asarray(g(x))
             if gx.shape != ():
-                raise ValueError(f"g must return a scalar; got shape {gx.shape}")
+                raise ValueError(f"g: expected a function returning a scalar; got shape {gx.shape}")
             return h * gx.astype(x.dtype) + 0.5 * jnp.sum((x - u) ** 2)
 
         return minimise(solver, objective, u)

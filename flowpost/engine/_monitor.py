@@ -5,13 +5,16 @@ Interface (what :func:`flowpost.run` calls; a user's own monitor implements the 
 
 ``tape_particles`` : int
     How many particles' per-step trajectories the driver should record inside each window
-    and hand to ``read`` (0 for none). The first ``tape_particles`` particles are taped.
+    and hand to ``read`` (0 for none): a fixed random subset, drawn from the run's key.
 ``open(target, stepper, state) -> None``
     Called once before the first window (and again on resume); resets internal buffers.
-``read(target, stepper, state, stats, tape, step, elapsed) -> dict``
+``read(target, stepper, state, stats, tape, step, elapsed, *, flow_time, reductions) -> dict``
     Called after each window. ``stats`` is the stepper's per-step stats stacked over the
-    window's steps (numpy arrays of shape ``(steps,)``); ``tape`` is ``None`` or an array
-    ``(steps, tape_particles, d)``. Returns the window's record.
+    window's steps (numpy arrays of shape ``(steps,)``, including the driver's
+    ``step_size``); ``tape`` is ``None`` or an array ``(steps, tape_particles, d)`` of a fixed
+    random subset of the particles; ``flow_time`` is the sum of the steps taken so far;
+    ``reductions`` says how each stat reduces over the window (the stepper's declaration).
+    Returns the window's record.
 ``judge(history) -> Verdict``
     Looks at the history (the new record is its last) and returns a :class:`Verdict`:
     ``"go"``, ``"stop"`` (with the reason) or ``"rewind"`` (roll back to the last good window,
@@ -35,12 +38,13 @@ unconstrained coordinates the flow moves:
       centre_drift = max_k |m_k - m_k'| / (s_k dt),  spread_drift = max_k |log s_k - log s_k'| / dt
 
   (primes: the previous window; ``dt`` the flow time between the two);
-- for stochastic steppers (``stepper.stochastic`` true, the default): ``rhat``, the largest
-  rank-normalised split R-hat over coordinates, and ``ess``, the smallest bulk effective
-  sample size, from the thinned trajectories of the first ``trail_particles`` particles,
+- for stochastic steppers (``stepper.stochastic``, a declaration every stepper makes):
+  ``rhat``, the largest rank-normalised split R-hat over coordinates, and ``ess``, the smallest
+  bulk effective sample size, from the thinned trajectories of ``trail_particles`` particles
+  (a fixed random subset drawn from the run's key),
   each an independent chain, kept in a bounded buffer (:mod:`flowpost.mixing`);
-- ``n_nonfinite`` and the stepper's stats summarised over the window (means; sums for
-  counters such as ``grad_evals`` and ``inner_capped``, see :mod:`flowpost.steppers.base`).
+- ``n_nonfinite`` and the stepper's stats reduced over the window as the stepper declares
+  (``sum``, ``mean`` over finite values, or ``max``; :mod:`flowpost.steppers.base`).
 
 Stop rules (the record of the window that stops the run says which, and so does
 ``Result.reason``): a target discrepancy, a plateau, and a user rule on the history; the
@@ -56,9 +60,10 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .discrepancy import stein_discrepancy
-from .kernels import whiten
-from .mixing import ThinnedTrail, bulk_ess, split_rhat
+from .._validate import boolean, callable_value, fail, integer, non_negative, positive, real
+from ..diagnostics._stein import stein_discrepancy
+from ..numerics import whiten
+from ..diagnostics._mixing import ThinnedTrail, bulk_ess, split_rhat
 
 __all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats"]
 
@@ -77,20 +82,19 @@ def _nonfinite(rec) -> Verdict:
     return Verdict("rewind", f"non-finite particles ({rec['n_nonfinite']}) at step {rec['step']}")
 
 
-def _is_counter(name: str) -> bool:
-    return name.startswith("n_") or name.endswith("_evals") or name.endswith("_capped")
-
-
-def summarise_stats(stats: dict[str, np.ndarray]) -> dict[str, float]:
-    """Per-window summary of per-step stats: sums for counters, means (over finite values)
-    otherwise."""
+def summarise_stats(stats: dict[str, np.ndarray], reductions: dict[str, str]) -> dict[str, float]:
+    """Per-window summary of per-step stats, each reduced as declared: ``"sum"``, ``"max"``
+    or ``"mean"`` (over the finite values; NaN when there are none)."""
     out = {}
     for k, v in stats.items():
         v = np.asarray(v, dtype=float)
         if v.size == 0:
             continue
-        if _is_counter(k):
+        how = reductions[k]
+        if how == "sum":
             out[k] = float(np.sum(v))
+        elif how == "max":
+            out[k] = float(np.max(v))
         else:
             finite = v[np.isfinite(v)]
             out[k] = float(np.mean(finite)) if finite.size else float("nan")
@@ -162,16 +166,22 @@ class Monitor:
         stop_when: Callable[[Any], Any] | None = None,
         growth_limit: float = 1e6,
     ):
-        if discrepancy_points < 2:
-            raise ValueError(f"discrepancy_points: need at least 2; got {discrepancy_points}")
-        if trail_particles < 0 or trail_thin < 1 or trail_capacity < 8:
-            raise ValueError("trail_particles >= 0, trail_thin >= 1 and trail_capacity >= 8 are required; "
-                             f"got {trail_particles}, {trail_thin}, {trail_capacity}")
+        boolean("discrepancy", discrepancy)
+        integer("discrepancy_points", discrepancy_points, minimum=2)
+        boolean("whitened", whitened)
+        integer("trail_particles", trail_particles, minimum=0)
+        integer("trail_thin", trail_thin, minimum=1)
+        integer("trail_capacity", trail_capacity, minimum=8)
+        if target_discrepancy is not None:
+            positive("target_discrepancy", target_discrepancy)
         if plateau is not None:
-            if not (isinstance(plateau, tuple) and len(plateau) == 3 and int(plateau[1]) >= 1):
-                raise ValueError(f"plateau: expected (figure, M >= 1, tol); got {plateau!r}")
-        if stop_when is not None and not callable(stop_when):
-            raise TypeError(f"stop_when: expected a callable on the history; got {type(stop_when).__name__}")
+            if not (isinstance(plateau, tuple) and len(plateau) == 3 and isinstance(plateau[0], str)):
+                raise fail("plateau", "(figure name, M >= 1, tol >= 0)", plateau, TypeError)
+            integer("plateau[1]", plateau[1], minimum=1)
+            non_negative("plateau[2]", plateau[2])
+        if stop_when is not None:
+            callable_value("stop_when", stop_when, "a callable on the history")
+        real("growth_limit", growth_limit, low=1.0, low_open=True, expected="a finite number > 1")
         self.discrepancy = bool(discrepancy)
         self.discrepancy_points = int(discrepancy_points)
         self.whitened = bool(whitened)
@@ -197,21 +207,17 @@ class Monitor:
         self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 0.0
         self._scale_set = False
         self._clock = None
-        stochastic = bool(getattr(stepper, "stochastic", True))
+        stochastic = stepper.stochastic
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
-    def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
+    def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
+             reductions: dict[str, str]) -> dict[str, Any]:
         fig = jax.device_get(_ensemble_figures(target, state.x))
-        n_steps = len(next(iter(stats.values()), ()))
-        h = float(getattr(stepper, "step_size", 1.0))
+        sizes = np.asarray(stats["step_size"], dtype=float)
+        now = float(flow_time)
         if self._clock is None:  # first window since open(): the flow time of the steps before it
-            self._clock = (step - n_steps) * h
-        # flow time advanced in this window: the steps' own sizes when the stepper reports them
-        # (a tuned MALA step), else the configured step size
-        sizes = np.asarray(stats.get("step_size", np.full(n_steps, h)), dtype=float)
-        window_time = float(np.sum(sizes[np.isfinite(sizes)])) if sizes.size else n_steps * h
-        now = self._clock + window_time
+            self._clock = now - float(np.sum(sizes))
         rec: dict[str, Any] = {"step": int(step), "flow_time": now, "elapsed": float(elapsed)}
         rec["mean_logp"] = float(fig["mean_logp"])
         rec["n_nonfinite"] = int(fig["n_nonfinite"])
@@ -233,7 +239,7 @@ class Monitor:
                 self._first_spread = max(self._first_spread, float(np.max(rec["spread"], initial=0.0)))
                 self._scale_set = True
             if self.discrepancy:
-                score = getattr(state, "score", None)
+                score = state.score if "score" in state._fields else None
                 m = min(self.discrepancy_points, state.x.shape[0])
                 key = jax.random.fold_in(jax.random.key(0x5D15C), int(step))
                 rec["ksd"] = float(_discrepancy(target, state.x, score, key, m, self.whitened))
@@ -246,7 +252,7 @@ class Monitor:
                         ess = np.asarray(bulk_ess(chains), dtype=float)
                     rec["rhat"] = float(np.nanmax(rhat)) if np.any(np.isfinite(rhat)) else float("nan")
                     rec["ess"] = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
-        rec.update(summarise_stats(stats))
+        rec.update(summarise_stats(stats, reductions))
         return rec
 
     def judge(self, history) -> Verdict:
@@ -296,10 +302,11 @@ class BareMonitor(Monitor):
     def open(self, target, stepper, state) -> None:
         self.tape_particles = 0
 
-    def read(self, target, stepper, state, stats, tape, step, elapsed) -> dict[str, Any]:
+    def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
+             reductions: dict[str, str]) -> dict[str, Any]:
         bad = int(jax.device_get(_count_nonfinite(state.x)))
-        rec = {"step": int(step), "elapsed": float(elapsed), "n_nonfinite": bad}
-        rec.update(summarise_stats(stats))
+        rec = {"step": int(step), "elapsed": float(elapsed), "n_nonfinite": bad, "flow_time": float(flow_time)}
+        rec.update(summarise_stats(stats, reductions))
         return rec
 
     def judge(self, history) -> Verdict:

@@ -44,50 +44,59 @@ map of the negative entropy in the Wasserstein-2 metric; two ways to compute it:
     density smooths the ensemble, which biases the stationary spread by a relative
     ``O(b^2)``.
 
-Both are built as :class:`~flowpost.steppers.split.Split` schemes (``Explicit()`` then the
+Both are built as :class:`~flowpost.steppers.Split` schemes (``Explicit()`` then the
 entropy part, Lie order), so the entropy parts :class:`GaussianEntropy` and
-:class:`KernelEntropy` can also be used in a user's own composition.
+:class:`KernelEntropy` (steppers of the one protocol) can also be used in a user's own
+composition.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 
-from ..inner import InnerSolver, minimise
-from ..kernels import DEFAULT_BLOCK, log_kde, normal_reference_bandwidth, whiten
-from .split import Explicit, Split, SplitState, SubStep, _check_fraction
+from .._pytree import pytree_dataclass, static, unchecked
+from .._validate import choice, fail, integer, positive
+from ..numerics import DEFAULT_BLOCK, InnerSolver, log_kde, minimise, normal_reference_bandwidth, whiten
+from ._parts import Explicit, Part, PositionState
+from ._solver_defaults import check_solver
+from ._split import Recipe, Split, compose
 
 __all__ = ["ForwardBackward", "GaussianEntropy", "KernelEntropy"]
 
 _HIGHEST = jax.lax.Precision.HIGHEST
 
-
-def _check_rank(target, x, owner):
-    n, d = x.shape
-    if n <= d:
-        raise ValueError(
-            f"{owner}: the closed-form Gaussian entropy step needs more particles than dimensions "
-            f"(N > d) for a full-rank ensemble covariance; got N={n}, d={d}. Use more particles or "
-            "entropy='kernel'."
-        )
+_INNER = {"grad_evals": "sum", "inner_iters": "mean", "inner_residual": "max", "inner_capped": "sum"}
 
 
-@dataclass(frozen=True)
-class GaussianEntropy(SubStep):
+@pytree_dataclass
+class GaussianEntropy(Part):
     """Closed-form Wasserstein proximal step of the negative entropy for a Gaussian ensemble.
 
     Over time ``t``: ``x <- m + V diag(s'/s) V^T (x - m)`` with ``C = V diag(s^2) V^T`` the
-    ensemble covariance and ``s' = (s + sqrt(s^2 + 4t)) / 2`` (module docstring). Needs
-    ``N > d``.
+    ensemble covariance (``1/N``) and ``s' = (s + sqrt(s^2 + 4t)) / 2`` (module docstring).
+    Needs ``N > d``. Source: "Wasserstein proximal gradient" (NeurIPS 2020).
     """
 
     fraction: float = 1.0
 
-    def check(self, target, x):
-        _check_rank(target, x, "GaussianEntropy")
+    stochastic = False
+    reductions = {"grad_evals": "sum"}
 
-    def apply(self, ctx, x, v, t, key):
+    def __post_init__(self):
+        self._check_fraction()
+
+    def start(self, target, x, key):
+        n, d = x.shape
+        if n <= d:
+            raise ValueError(
+                f"init: expected more particles than dimensions (N > d) for the closed-form Gaussian "
+                f"entropy step's full-rank ensemble covariance; got N={n}, d={d} (use more particles "
+                "or entropy='kernel')"
+            )
+        return PositionState(x=x)
+
+    def advance(self, target, state, key, h):
+        x = state.x
         n = x.shape[0]
         m = jnp.mean(x, axis=0)
         xc = x - m
@@ -95,14 +104,14 @@ class GaussianEntropy(SubStep):
         cov = 0.5 * (cov + cov.T)
         vecs, w = jax.lax.linalg.eigh(cov, symmetrize_input=False, sort_eigenvalues=False)
         w = jnp.maximum(w, jnp.finfo(x.dtype).tiny)
-        ratio = 0.5 * (1.0 + jnp.sqrt(1.0 + 4.0 * t / w))
+        ratio = 0.5 * (1.0 + jnp.sqrt(1.0 + 4.0 * h / w))
         z = jnp.matmul(xc, vecs, precision=_HIGHEST) * ratio
         x_new = m + jnp.matmul(z, vecs.T, precision=_HIGHEST)
-        return x_new, v, {"grad_evals": jnp.zeros((), x.dtype)}
+        return PositionState(x=x_new), {"grad_evals": jnp.zeros((), x.dtype)}
 
 
-@dataclass(frozen=True)
-class KernelEntropy(SubStep):
+@pytree_dataclass
+class KernelEntropy(Part):
     """Wasserstein proximal step of the negative entropy with a kernel-density inner solve.
 
     Solves ``min_Y sum_i log mu_hat_Y(y_i) + sum_i |y_i - x_i|^2 / (2t)`` warm-started at
@@ -111,7 +120,7 @@ class KernelEntropy(SubStep):
     Parameters
     ----------
     bandwidth : float, optional
-        Kernel bandwidth in whitened coordinates; default: normal-reference rule.
+        Kernel bandwidth in whitened coordinates (traced); default: normal-reference rule.
     whitened : bool
         Build the kernel density in the whitened coordinates of ``X`` (default) or in the
         original coordinates.
@@ -124,28 +133,33 @@ class KernelEntropy(SubStep):
     """
 
     bandwidth: float | None = None
-    whitened: bool = True
+    whitened: bool = static(True)
     solver: InnerSolver = InnerSolver(tol=1e-4, max_iters=100)
-    block: int = DEFAULT_BLOCK
+    block: int = static(DEFAULT_BLOCK)
     fraction: float = 1.0
 
-    def __post_init__(self):
-        object.__setattr__(self, "fraction", _check_fraction("KernelEntropy", self.fraction))
-        if self.bandwidth is not None:
-            b = float(self.bandwidth)
-            if not b > 0 or b == float("inf"):
-                raise ValueError(f"KernelEntropy: bandwidth must be a positive number or None; got {self.bandwidth!r}")
-            object.__setattr__(self, "bandwidth", b)
-        if not isinstance(self.solver, InnerSolver):
-            raise TypeError(f"KernelEntropy: solver must be a flowpost.inner.InnerSolver; got {type(self.solver).__name__}")
-        if isinstance(self.block, bool) or not isinstance(self.block, int) or self.block < 1:
-            raise ValueError(f"KernelEntropy: block must be a positive int; got {self.block!r}")
+    stochastic = False
+    reductions = _INNER
 
-    def apply(self, ctx, x, v, t, key):
+    def __post_init__(self):
+        self._check_fraction()
+        if self.bandwidth is not None:
+            object.__setattr__(self, "bandwidth", positive("bandwidth", self.bandwidth))
+        check_solver("solver", self.solver)
+        if self.solver is None:
+            raise fail("solver", "an InnerSolver", None, TypeError)
+        integer("block", self.block, minimum=1)
+        if not isinstance(self.whitened, bool):
+            raise fail("whitened", "True or False", self.whitened, TypeError)
+
+    def start(self, target, x, key):
+        return PositionState(x=x)
+
+    def advance(self, target, state, key, h):
+        x = state.x
         x0 = jax.lax.stop_gradient(x)
         if self.whitened:
-            wmap = whiten(x0)
-            to_z = wmap.apply
+            to_z = whiten(x0).apply
         else:
             def to_z(a):
                 return a
@@ -158,7 +172,7 @@ class KernelEntropy(SubStep):
         def objective(y):
             zy = to_z(y)
             ent = jnp.sum(log_kde(zy, zy, b, block=self.block))
-            return ent + jnp.sum((y - x0) ** 2) / (2 * t)
+            return ent + jnp.sum((y - x0) ** 2) / (2 * h)
 
         y, rep = minimise(self.solver, objective, x0)
         stats = {
@@ -167,12 +181,20 @@ class KernelEntropy(SubStep):
             "inner_residual": rep.residual.astype(x.dtype),
             "inner_capped": rep.capped.astype(x.dtype),
         }
-        return y, v, stats
+        return PositionState(x=y), stats
 
 
-@dataclass(frozen=True)
-class ForwardBackward:
-    """Wasserstein proximal gradient stepper (module docstring).
+@pytree_dataclass
+class ForwardBackward(Recipe):
+    """Wasserstein proximal gradient stepper: a forward step on the potential, then the
+    backward (JKO) step of the negative entropy::
+
+        x <- x + h grad log pi(x);     mu <- argmin_nu E_nu[log nu] + W2(nu, mu)^2 / (2h)
+
+    With ``entropy="gaussian"`` the backward step is the closed form for a Gaussian ensemble
+    (per eigen-direction ``s -> (s + sqrt(s^2 + 4h)) / 2``) and a Gaussian target is an exact
+    fixed point (no step-size bias for ``h L < 1``). Source: "Wasserstein proximal gradient"
+    (NeurIPS 2020).
 
     Parameters
     ----------
@@ -191,31 +213,29 @@ class ForwardBackward:
     """
 
     step_size: float = 1e-2
-    entropy: str = "gaussian"
+    entropy: str = static("gaussian")
     bandwidth: float | None = None
     solver: InnerSolver | None = None
 
+    stochastic = False
+    reductions = _INNER
+
     def __post_init__(self):
-        if self.entropy not in ("gaussian", "kernel"):
-            raise ValueError(f"entropy: expected 'gaussian' or 'kernel'; got {self.entropy!r}")
+        object.__setattr__(self, "step_size", positive("step_size", self.step_size))
+        choice("entropy", self.entropy, ("gaussian", "kernel"))
         if self.entropy == "gaussian" and (self.bandwidth is not None or self.solver is not None):
-            raise ValueError("bandwidth / solver: only used with entropy='kernel'")
-        self.scheme  # validates step_size and the entropy part's options
+            raise fail("bandwidth / solver", "None with entropy='gaussian' (they are used with "
+                       "entropy='kernel' only)", (self.bandwidth, self.solver))
+        if self.bandwidth is not None:
+            object.__setattr__(self, "bandwidth", positive("bandwidth", self.bandwidth))
+        check_solver("solver", self.solver)
 
     @property
     def scheme(self) -> Split:
-        """The equivalent :class:`Split` scheme."""
+        """The equivalent splitting ``Split((Explicit(), GaussianEntropy() or KernelEntropy()))``."""
         if self.entropy == "gaussian":
-            back = GaussianEntropy()
+            back = unchecked(GaussianEntropy)
         else:
             kw = {} if self.solver is None else {"solver": self.solver}
-            back = KernelEntropy(bandwidth=self.bandwidth, **kw)
-        return Split((Explicit(), back), step_size=self.step_size, order="lie")
-
-    stochastic = False  # deterministic: the monitor skips R-hat and ESS
-
-    def start(self, target, x, key) -> SplitState:
-        return self.scheme.start(target, x, key)
-
-    def advance(self, target, state: SplitState, key):
-        return self.scheme.advance(target, state, key)
+            back = unchecked(KernelEntropy, bandwidth=self.bandwidth, **kw)
+        return compose((unchecked(Explicit), back))

@@ -76,16 +76,9 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
-from flowpost.kernels import (
-    DEFAULT_BLOCK,
-    IMQ,
-    RadialKernel,
-    _as_points,
-    _check_block,
-    _resolve_scale,
-    map_row_blocks,
-    pairwise_sqdist,
-)
+from ..numerics import DEFAULT_BLOCK, IMQ, RadialKernel, map_row_blocks, pairwise_sqdist
+from ..numerics._kernels import _as_points, _resolve_scale
+from ..numerics._pairwise import _check_block
 
 Array = jax.Array
 ArrayLike = Any
@@ -135,7 +128,7 @@ def _check_inputs(x: ArrayLike, scores: ArrayLike) -> tuple[Array, Array]:
     return x, scores
 
 
-@partial(jax.jit, static_argnames=("kernel", "block", "subset"))
+@partial(jax.jit, static_argnames=("block", "subset"))
 def squared_stein_discrepancy(
     x: ArrayLike,
     scores: ArrayLike,

@@ -21,8 +21,8 @@ from typing import Any
 
 import numpy as np
 
-from .history import History
-from .target import ROOT_NAME
+from ._history import History
+from ..model._labels import ROOT_NAME, element_labels
 
 __all__ = ["Result", "load"]
 
@@ -67,7 +67,7 @@ class Result:
 
     def __init__(self, *, target=None, state=None, history=None, status="done", reason="",
                  steps=0, elapsed=0.0, stepper=None, report=None, events=None,
-                 _loaded: dict | None = None):
+                 controller_description: str | None = None, _loaded: dict | None = None):
         self.target = target
         self.state = state
         self.history = history if history is not None else History()
@@ -98,7 +98,8 @@ class Result:
             self._supports = [s.support.describe() for s in layout.slots]
             self._root_array = layout.treedef.num_leaves == 1 and layout.names == (ROOT_NAME,)
             self._constrained = {n: np.asarray(l) for n, l in zip(self._names, leaves)}
-            self.stepper_description = repr(stepper)
+            self.stepper_description = repr(stepper) + (
+                f", {controller_description}" if controller_description else "")
 
     # ----- views -------------------------------------------------------------------------
     @property
@@ -126,10 +127,7 @@ class Result:
         n = self.n_particles
         for name, shape in zip(self._names, self._shapes):
             arr = self._constrained[name].reshape(n, -1)
-            if len(shape) == 0:
-                names.append(name)
-            else:
-                names.extend(f"{name}[{','.join(map(str, idx))}]" for idx in np.ndindex(*shape))
+            names.extend(element_labels(name, tuple(shape)))
             cols.append(arr)
         return names, np.concatenate(cols, axis=1)
 
@@ -160,7 +158,7 @@ class Result:
     def plot(self, params: list[str] | None = None, pair: tuple[str, str] | None = None):
         """Monitor curves, marginal histograms of ``params`` and a scatter of ``pair``;
         returns the matplotlib figure (see :func:`flowpost.plotting.run_figure`)."""
-        from .plotting import run_figure
+        from ..plotting import run_figure
 
         return run_figure(self, params=params, pair=pair)
 

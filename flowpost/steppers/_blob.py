@@ -34,7 +34,7 @@ term when ``eps`` is small).
 
 Bandwidth. ``bandwidth=None`` (default) uses a normal-reference rule in the ensemble's
 whitened coordinates: with ``B`` the ensemble covariance (``N - 1`` denominator, small ridge;
-see :func:`flowpost.kernels.whiten`) and
+see :func:`flowpost.numerics.whiten`) and
 
     eps = bandwidth_factor * (4 / ((d + 2) N))^{1/(d + 4)},
 
@@ -45,89 +45,99 @@ rule assumes a roughly Gaussian ensemble: on a multimodal one the global covaria
 ``eps`` oversmooths each mode (the per-mode spread then comes out too small; use a smaller
 ``bandwidth_factor`` or a fixed ``bandwidth``). A fixed float ``bandwidth`` gives an
 isotropic kernel ``B = I`` in the original coordinates. All pairwise sums run in row blocks
-through :mod:`flowpost.kernels` (memory ``O(block * N)``).
+through :mod:`flowpost.numerics` (memory ``O(block * N)``).
 
 Source: "A blob method for diffusion" (Calc. Var. PDE, 2019).
 """
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
+from typing import ClassVar
 
 import jax
 import jax.numpy as jnp
 from jax.scipy.linalg import solve_triangular
 
-from ..kernels import DEFAULT_BLOCK, RBF, grad_log_kde, kernel_sums, normal_reference_bandwidth, whiten
-from .base import ScoredState, positive_number
+from .._pytree import pytree_dataclass, static
+from .._validate import choice, integer, positive
+from ..numerics import DEFAULT_BLOCK, RBF, grad_log_kde, kernel_sums, normal_reference_bandwidth, whiten
+from .base import ScoredState, Stepper
 
 __all__ = ["BlobFlow"]
 
 _GAUSS = RBF()  # Gaussian profile exp(-r2 / (2 eps^2)); the bandwidth is always passed as ``scale``
 
 
-@dataclass(frozen=True)
-class BlobFlow:
-    """Blob (kernel-density) particle flow.
+@pytree_dataclass
+class BlobFlow(Stepper):
+    """Blob (kernel-density) particle flow (deterministic).
+
+    Explicit steps of the Wasserstein gradient flow of KL with the ensemble replaced by its
+    Gaussian kernel density ``mu_hat`` (kernel covariance ``eps^2 B``), ``s = grad log pi``::
+
+        density:  x_i <- x_i + h [ s(x_i) - grad log mu_hat(x_i) ]
+        energy:   x_i <- x_i + h [ s(x_i) - grad log mu_hat(x_i)
+                                   - sum_j grad_x K_eps(x_i - x_j) / sum_k K_eps(x_j - x_k) ]
+
+    The kernel terms are stiff: explicit steps need ``h`` below roughly
+    ``2 eps^2 lambda_min(B)`` (and below ``2 / L`` for the score term, ``L`` the largest
+    curvature of ``-log pi``). Source: "A blob method for diffusion" (Calc. Var. PDE, 2019).
 
     Parameters
     ----------
     step_size : float
-        Step ``h`` of the explicit update.
+        Step ``h`` of the explicit update (the initial value of the run's step-size
+        controller).
     bandwidth : float or None
-        Fixed isotropic kernel bandwidth ``eps``, or ``None`` for the whitened
-        normal-reference rule (see the module docstring).
+        Fixed isotropic kernel bandwidth ``eps`` (``B = I``), or ``None`` for the whitened
+        normal-reference rule (``B`` the ensemble covariance; module docstring).
     bandwidth_factor : float
-        Multiplies the rule's bandwidth (ignored when ``bandwidth`` is fixed).
+        Multiplies the rule's bandwidth (ignored when ``bandwidth`` is fixed); positive, finite.
     form : {"energy", "density"}
         ``"energy"`` (default): the blob paper's variational form, velocity
         ``s - grad log mu_hat`` minus the extra symmetrising term; ``"density"``: velocity
-        ``s - grad log mu_hat`` alone (cheaper, larger bandwidth bias).
+        ``s - grad log mu_hat`` alone (cheaper, larger bandwidth bias). Static.
     block : int
-        Particles per row block in the pairwise sums.
+        Particles per row block in the pairwise sums (memory ``O(block * N)``; static).
 
     Notes
     -----
-    Stats per step: ``"bandwidth"`` (``eps``, in whitened units under the default rule) and
-    ``"grad_evals"`` (1).
+    Stats per step: ``"bandwidth"`` (``eps``, in whitened units under the default rule;
+    averaged over a window) and ``"grad_evals"`` (1, summed).
     """
 
     step_size: float = 1e-2
     bandwidth: float | None = None
     bandwidth_factor: float = 1.0
-    form: str = "energy"
-    block: int = DEFAULT_BLOCK
+    form: str = static("energy")
+    block: int = static(DEFAULT_BLOCK)
 
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
+    reductions: ClassVar[dict[str, str]] = {"bandwidth": "mean", "grad_evals": "sum"}
 
     def __post_init__(self):
-        positive_number("step_size", self.step_size)
+        object.__setattr__(self, "step_size", positive("step_size", self.step_size))
         if self.bandwidth is not None:
-            b = float(self.bandwidth)
-            if not (b > 0 and math.isfinite(b)):
-                raise ValueError(f"bandwidth: must be None or a positive finite number; got {self.bandwidth}")
-            object.__setattr__(self, "bandwidth", b)
-        if not float(self.bandwidth_factor) > 0:
-            raise ValueError(f"bandwidth_factor: must be positive; got {self.bandwidth_factor}")
-        if self.form not in ("density", "energy"):
-            raise ValueError(f"form: expected 'density' or 'energy'; got {self.form!r}")
-        if isinstance(self.block, bool) or not isinstance(self.block, int) or self.block < 1:
-            raise ValueError(f"block: must be a positive int; got {self.block!r}")
+            object.__setattr__(self, "bandwidth", positive("bandwidth", self.bandwidth))
+        object.__setattr__(self, "bandwidth_factor", positive("bandwidth_factor", self.bandwidth_factor))
+        object.__setattr__(self, "form", choice("form", self.form, ("energy", "density")))
+        object.__setattr__(self, "block", integer("block", self.block, minimum=1))
 
-    def start(self, target, x, key) -> ScoredState:
+    def start(self, target, x: jax.Array, key: jax.Array) -> ScoredState:
         if x.shape[0] < 2:
-            raise ValueError(f"init: BlobFlow needs at least 2 particles; got N={x.shape[0]}")
+            raise ValueError(
+                f"init: expected at least 2 particles for BlobFlow (it interacts them); got N={x.shape[0]}"
+            )
         logp, score = target.value_and_score(x)
         return ScoredState(x=x, logp=logp, score=score)
 
-    def entropy_gradient(self, x: jax.Array):
+    def entropy_gradient(self, x: jax.Array) -> tuple[jax.Array, jax.Array]:
         """``grad`` of the first variation of the entropy term at every particle (the part
         subtracted from the score), and the bandwidth ``eps`` used."""
         if self.bandwidth is None:
             w = whiten(x)
             z = w.apply(x)
             # whitened points have unit variance per coordinate (up to the tiny ridge)
-            eps = self.bandwidth_factor * normal_reference_bandwidth(z)
+            eps = jnp.asarray(self.bandwidth_factor, x.dtype) * normal_reference_bandwidth(z)
         else:
             z = x - jnp.mean(x, axis=0)
             eps = jnp.asarray(self.bandwidth, x.dtype)
@@ -146,11 +156,11 @@ class BlobFlow:
             g = solve_triangular(w.chol.T, g.T, lower=False).T
         return g, eps
 
-    def advance(self, target, state: ScoredState, key):
+    def advance(self, target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
         x = state.x
-        h = jnp.asarray(self.step_size, x.dtype)
+        h = jnp.asarray(h, x.dtype)
         g, eps = self.entropy_gradient(x)
         x_new = x + h * (state.score - g)
         logp, score = target.value_and_score(x_new)
-        stats = {"bandwidth": eps, "grad_evals": jnp.ones((), x.dtype)}
+        stats = {"bandwidth": jnp.asarray(eps, x.dtype), "grad_evals": jnp.ones((), x.dtype)}
         return ScoredState(x=x_new, logp=logp, score=score), stats

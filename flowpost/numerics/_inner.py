@@ -11,8 +11,11 @@ problem
 at every outer step, usually warm-started at the current particle. This
 module holds one solver for all of them:
 
-* :class:`InnerSolver` -- a frozen, hashable configuration (safe to pass as a
-  static argument of :func:`jax.jit`);
+* :class:`InnerSolver` -- a frozen configuration that is a JAX pytree: the
+  numbers ``tol``, ``max_iters`` and ``learning_rate`` are traced leaves (a new
+  tolerance or iteration cap never recompiles, and a sweep over them can be
+  vmapped), the structural choices ``method``, ``memory_size`` and
+  ``linesearch_steps`` are static;
 * :func:`minimise` -- runs the optax optimiser inside
   :func:`jax.lax.while_loop` and returns the minimiser together with a
   :class:`SolveReport`.
@@ -45,13 +48,14 @@ per problem.
 
 from __future__ import annotations
 
-import numbers
-from dataclasses import dataclass
 from typing import Any, Callable, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import optax
+
+from .._pytree import pytree_dataclass, static
+from .._validate import callable_value, choice, fail, instance, integer, non_negative, positive
 
 __all__ = ["InnerSolver", "SolveReport", "minimise", "FIRST_ORDER_METHODS"]
 
@@ -59,16 +63,23 @@ PyTree = Any
 
 #: First-order optax optimisers that :class:`InnerSolver` accepts besides
 #: ``"lbfgs"``; each needs a ``learning_rate``.
-FIRST_ORDER_METHODS: dict[str, Callable[..., optax.GradientTransformation]] = {
+FIRST_ORDER_METHODS: dict[str, Callable[..., optax.GradientTransformationExtraArgs]] = {
     "adam": optax.adam,
     "sgd": optax.sgd,
     "rmsprop": optax.rmsprop,
 }
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class InnerSolver:
-    r"""Configuration of the inner minimiser (frozen and hashable).
+    r"""Configuration of the inner minimiser (a frozen pytree).
+
+    ``tol``, ``max_iters`` and ``learning_rate`` are traced leaves: a solver can
+    be passed to a jitted function as an ordinary argument, and changing one of
+    these numbers does not recompile. ``method``, ``memory_size`` and
+    ``linesearch_steps`` are static (they choose the optimiser and the shapes of
+    its state). ``learning_rate=None`` is an empty subtree, so switching between
+    a fixed rate and the line search changes the structure (and recompiles).
 
     Parameters
     ----------
@@ -83,56 +94,62 @@ class InnerSolver:
         evaluation per iteration).
     tol : float
         Absolute tolerance on the max-abs gradient norm
-        :math:`\max_i |\partial_i f(x)|`; must be >= 0.
+        :math:`\max_i |\partial_i f(x)|`; finite and >= 0.
     max_iters : int
         Maximum number of optimiser updates (>= 0).
     learning_rate : float or None
         For ``"lbfgs"``: ``None`` lets the line search choose the step
         (recommended); a number scales the L-BFGS direction by it instead.
-        Required (> 0) for the first-order methods.
+        Required (finite, > 0) for the first-order methods.
     memory_size : int
         Number of stored curvature pairs for L-BFGS (>= 1).
     linesearch_steps : int
         Maximum number of trial points (each one value-and-gradient
         evaluation) per zoom line search (>= 1).
 
+    Raises
+    ------
+    TypeError
+        A value of the wrong kind (a string, a bool, a float where an integer
+        belongs).
+    ValueError
+        A number out of range, ``nan`` or ``inf``, or an unknown ``method``.
+
     Examples
     --------
+    >>> import jax
     >>> solver = InnerSolver(tol=1e-5, max_iters=100)
-    >>> hash(solver) == hash(InnerSolver(tol=1e-5, max_iters=100))
+    >>> jax.tree_util.tree_leaves(solver)
+    [1e-05, 100]
+    >>> solver == InnerSolver(tol=1e-5, max_iters=100)
     True
     """
 
-    method: str = "lbfgs"
+    method: str = static("lbfgs")
     tol: float = 1e-6
     max_iters: int = 50
     learning_rate: float | None = None
-    memory_size: int = 10
-    linesearch_steps: int = 20
+    memory_size: int = static(10)
+    linesearch_steps: int = static(20)
 
     def __post_init__(self) -> None:
-        allowed = ("lbfgs",) + tuple(FIRST_ORDER_METHODS)
-        if not isinstance(self.method, str) or self.method not in allowed:
-            raise ValueError(f"method must be one of {allowed}; got {self.method!r}")
-        _check_number("tol", self.tol, minimum=0.0)
-        _check_int("max_iters", self.max_iters, minimum=0)
-        _check_int("memory_size", self.memory_size, minimum=1)
-        _check_int("linesearch_steps", self.linesearch_steps, minimum=1)
+        # Runs on user values only (JAX rebuilds the pytree without __init__);
+        # numbers are normalised to Python float / int so equal configs are equal.
+        method = choice("method", self.method, ("lbfgs",) + tuple(FIRST_ORDER_METHODS))
+        object.__setattr__(self, "method", method)
+        object.__setattr__(self, "tol", non_negative("tol", self.tol))
+        object.__setattr__(self, "max_iters", integer("max_iters", self.max_iters, minimum=0))
+        object.__setattr__(self, "memory_size", integer("memory_size", self.memory_size, minimum=1))
+        object.__setattr__(
+            self, "linesearch_steps", integer("linesearch_steps", self.linesearch_steps, minimum=1)
+        )
         if self.learning_rate is None:
-            if self.method != "lbfgs":
-                raise ValueError(
-                    f"learning_rate must be a positive number for method={self.method!r}; "
-                    "got None"
+            if method != "lbfgs":
+                raise fail(
+                    "learning_rate", f"a positive finite number for method={method!r}", None
                 )
         else:
-            _check_number("learning_rate", self.learning_rate, minimum=0.0, strict=True)
-        # Normalise numbers to Python types so that equal configs hash equally.
-        object.__setattr__(self, "tol", float(self.tol))
-        object.__setattr__(self, "max_iters", int(self.max_iters))
-        object.__setattr__(self, "memory_size", int(self.memory_size))
-        object.__setattr__(self, "linesearch_steps", int(self.linesearch_steps))
-        if self.learning_rate is not None:
-            object.__setattr__(self, "learning_rate", float(self.learning_rate))
+            object.__setattr__(self, "learning_rate", positive("learning_rate", self.learning_rate))
 
     @property
     def uses_linesearch(self) -> bool:
@@ -140,9 +157,17 @@ class InnerSolver:
         return self.method == "lbfgs" and self.learning_rate is None
 
     def optimiser(self) -> optax.GradientTransformation:
-        """Build the optax gradient transformation this configuration describes."""
+        """Build the optax gradient transformation this configuration describes.
+
+        Works with traced leaves: optax takes the learning rate as a scalar
+        (``optax.scale_by_learning_rate`` inside ``optax.lbfgs``, ``optax.adam`` and
+        the others), never as a Python number it branches on.
+        """
+        return self._build(self.learning_rate)
+
+    def _build(self, learning_rate: Any) -> optax.GradientTransformationExtraArgs:
         if self.method == "lbfgs":
-            if self.learning_rate is None:
+            if learning_rate is None:
                 # Quasi-Newton directions are scaled so that a unit step is
                 # the natural first trial ("one"), as in optax.lbfgs's default.
                 search = optax.scale_by_zoom_linesearch(
@@ -151,11 +176,11 @@ class InnerSolver:
                 )
                 return optax.lbfgs(memory_size=self.memory_size, linesearch=search)
             return optax.lbfgs(
-                learning_rate=self.learning_rate,
+                learning_rate=learning_rate,
                 memory_size=self.memory_size,
                 linesearch=None,
             )
-        return FIRST_ORDER_METHODS[self.method](learning_rate=self.learning_rate)
+        return FIRST_ORDER_METHODS[self.method](learning_rate=learning_rate)
 
 
 class SolveReport(NamedTuple):
@@ -203,7 +228,9 @@ def minimise(
     Parameters
     ----------
     solver : InnerSolver
-        Configuration (static: it selects the optimiser and loop bounds).
+        Configuration. A pytree: its numbers (``tol``, ``max_iters``,
+        ``learning_rate``) may be traced, e.g. when the solver is an ordinary
+        argument of a jitted function; its method and memory sizes are static.
     fun : callable
         ``fun(x) -> scalar``, differentiable with :func:`jax.grad`. Extra data
         (the particle being stepped, the step size) are closed over; inside a
@@ -229,8 +256,9 @@ def minimise(
     Notes
     -----
     The function is traceable but not compiled by itself; call it inside
-    :func:`jax.jit` (with ``solver`` static) for speed -- eager calls pay the
-    op-by-op cost of the set-up.
+    :func:`jax.jit` for speed (``solver`` may be passed as an ordinary argument:
+    a new tolerance or cap does not recompile) -- eager calls pay the op-by-op
+    cost of the set-up.
 
     Examples
     --------
@@ -240,25 +268,21 @@ def minimise(
     >>> bool(rep.converged)
     True
     """
-    if not isinstance(solver, InnerSolver):
-        raise TypeError(f"solver must be an InnerSolver; got {type(solver).__name__}")
-    if not callable(fun):
-        raise TypeError(f"fun must be callable; got {type(fun).__name__}")
+    instance("solver", solver, InnerSolver, "an InnerSolver")
+    callable_value("fun", fun, "a callable fun(x) -> scalar")
     x0 = jax.tree.map(jnp.asarray, x0)
     leaves = jax.tree.leaves(x0)
     if not leaves:
-        raise ValueError("x0 must contain at least one array leaf; got an empty pytree")
+        raise fail("x0", "a pytree with at least one array leaf", x0)
     for leaf in leaves:
         if not jnp.issubdtype(leaf.dtype, jnp.floating):
-            raise TypeError(
-                f"x0 must have floating-point leaves; got a leaf of dtype {leaf.dtype}"
-            )
+            raise TypeError(f"x0: expected floating-point leaves; got a leaf of dtype {leaf.dtype}")
     out = jax.eval_shape(fun, x0)
     if not hasattr(out, "shape") or out.shape != () or not jnp.issubdtype(out.dtype, jnp.floating):
         shape = getattr(out, "shape", type(out).__name__)
         dtype = getattr(out, "dtype", "")
         raise ValueError(
-            "fun must return a real floating-point scalar (shape ()); "
+            f"fun: expected a function returning a real floating-point scalar (shape ()); "
             f"got shape {shape} {dtype}"
         )
 
@@ -278,7 +302,10 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
     def objective(x):
         return jnp.asarray(fun(x)).astype(vdtype)
 
-    opt = solver.optimiser()
+    # The numbers of the solver may be tracers (a solver passed as an ordinary jit
+    # argument); they are cast to the value dtype so they never promote the carry.
+    lr = None if solver.learning_rate is None else jnp.asarray(solver.learning_rate, vdtype)
+    opt = solver._build(lr)
     tol = jnp.asarray(solver.tol, vdtype)
     max_iters = solver.max_iters
 
@@ -353,21 +380,4 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
     )
 
 
-
 STALL_PATIENCE = 5  # iterations without progress after which a solve stops (reported capped)
-
-
-def _check_number(name: str, value: Any, *, minimum: float, strict: bool = False) -> None:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise TypeError(f"{name} must be a real number; got {type(value).__name__}")
-    bad = value <= minimum if strict else value < minimum
-    if bad or value != value:
-        rel = ">" if strict else ">="
-        raise ValueError(f"{name} must be {rel} {minimum}; got {value!r}")
-
-
-def _check_int(name: str, value: Any, *, minimum: int) -> None:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an integer; got {type(value).__name__}")
-    if value < minimum:
-        raise ValueError(f"{name} must be >= {minimum}; got {value!r}")

@@ -11,16 +11,16 @@ warm started at ``Y = X``. The step is deterministic (no noise); the entropy par
 carried by the kernel density ``mu_hat_Y`` of the new ensemble itself, so particles repel.
 
 Kernel density (whitened). At the start of each step the ensemble ``X`` gives a mean ``m`` and
-a Cholesky factor ``L`` of its covariance (``flowpost.kernels.whiten``); both are held fixed
+a Cholesky factor ``L`` of its covariance (``flowpost.numerics.whiten``); both are held fixed
 during the inner solve. The density is a Gaussian kernel density in whitened coordinates
 ``z = L^{-1}(y - m)``:
 
     mu_hat_Y(y) = (1/N) sum_j N(y; y_j, b^2 L L^T),     i.e.  a kernel of covariance b^2 Cov(X),
 
-computed by ``flowpost.kernels.log_kde`` in row blocks (memory ``O(N * block)``). The kernel
+computed by ``flowpost.numerics.log_kde`` in row blocks (memory ``O(N * block)``). The kernel
 follows the ensemble's shape, so a narrow direction is not blurred by the width of a wide one.
 Bandwidth rule (default): the normal-reference rule applied in whitened coordinates
-(``flowpost.kernels.normal_reference_bandwidth`` of ``L^{-1}(X - m)``),
+(``flowpost.numerics.normal_reference_bandwidth`` of ``L^{-1}(X - m)``),
 
     b = (4 / ((d + 2) N))^(1 / (d + 4))      (per whitened coordinate, whose variance is ~1),
 
@@ -83,16 +83,16 @@ Source: "The variational formulation of the Fokker-Planck equation" (SIAM J. Mat
 """
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
-from typing import NamedTuple
+from typing import ClassVar, NamedTuple
 
 import jax
 import jax.numpy as jnp
 
-from ..inner import InnerSolver, minimise
-from ..kernels import DEFAULT_BLOCK, log_kde, normal_reference_bandwidth, whiten
-from .implicit_langevin import _check_common, default_solver
+from .._pytree import pytree_dataclass, static
+from .._validate import boolean, integer, positive
+from ..numerics import DEFAULT_BLOCK, InnerSolver, Whitening, log_kde, minimise, normal_reference_bandwidth
+from ._solver_defaults import check_solver, default_solver
+from .base import Stepper
 
 __all__ = ["JKO", "JKOState"]
 
@@ -118,92 +118,122 @@ def _preconditioner(chol: jax.Array, h: jax.Array, b: jax.Array) -> jax.Array:
     return jax.lax.stop_gradient(jnp.matmul(vec * scale, vec.T, precision=_HIGHEST))
 
 
-@dataclass(frozen=True)
-class JKO:
+def _whitening(x: jax.Array, ridge: jax.Array) -> Whitening:
+    """The whitening of :func:`flowpost.numerics.whiten` with a traced ``ridge``:
+    ``L L^T = Sigma + lambda I``, ``lambda = ridge tr(Sigma) / d`` (1 if ``tr Sigma = 0``),
+    ``Sigma`` the ensemble covariance with the ``N - 1`` denominator."""
+    n, d = x.shape
+    m = jnp.mean(x, axis=0)
+    xc = x - m
+    cov = jnp.matmul(xc.T, xc, precision=_HIGHEST) / max(n - 1, 1)
+    tr = jnp.trace(cov)
+    lam = jnp.where(tr > 0, ridge * tr / d, jnp.ones_like(tr))
+    chol = jnp.linalg.cholesky(cov + lam * jnp.eye(d, dtype=x.dtype))
+    return Whitening(mean=m, chol=chol)
+
+
+@pytree_dataclass
+class JKO(Stepper):
     """Particle JKO stepper (deterministic, interacting through a whitened kernel density).
+
+    One backward (implicit) Euler step of the Wasserstein gradient flow of KL, particle ``i``
+    of the new ensemble ``Y`` transported from ``x_i``, ``mu_hat_Y`` the Gaussian kernel density
+    of ``Y`` with kernel covariance ``b^2 Cov(X)``::
+
+        Y = argmin_Y  mean_i [ -log pi(y_i) + log mu_hat_Y(y_i) ]  +  mean_i |y_i - x_i|^2 / (2 h)
+
+    solved by the inner solver from ``Y = X``. Implicit: any ``h > 0`` is stable for a
+    log-concave target; the kernel density biases the variance down by about ``b^4`` per
+    direction (module docstring). Source: "The variational formulation of the Fokker-Planck
+    equation" (SIAM J. Math. Anal., 1998).
 
     Parameters
     ----------
     step_size : float
-        Time step ``h`` of the JKO scheme; any positive value is stable for a log-concave target.
+        Time step ``h`` of the JKO scheme (the initial value of the run's step-size
+        controller); any positive value is stable for a log-concave target.
     solver : InnerSolver, optional
-        Inner solver of the ensemble problem (``N d`` unknowns); its ``tol`` is about a length
-        (see the module docstring). ``None`` (default): L-BFGS with line search, ``tol = 1e-3``
-        for float32 ensembles and ``1e-7`` for float64
-        (:func:`flowpost.steppers.implicit_langevin.default_solver`), at most 200 iterations.
+        Inner solver of the ensemble problem (``N d`` unknowns; a pytree, its numbers traced);
+        its ``tol`` is about a length (see the module docstring). ``None`` (default): L-BFGS
+        with line search, ``tol = 1e-3`` for float32 ensembles and ``1e-7`` for float64
+        (:func:`flowpost.steppers.default_solver`), at most 200 iterations.
         The line search compares values of ``J``, a sum over ``N`` particles whose float32
         rounding error stops progress near a max-abs gradient of ``1e-4``; a smaller float32
         ``tol`` makes solves run to the cap.
     bandwidth : float, optional
-        Fixed kernel bandwidth in whitened coordinates. ``None`` (default): the normal-reference
-        rule ``(4 / ((d + 2) N))^(1/(d + 4))`` in whitened coordinates, recomputed each step.
+        Fixed kernel bandwidth in whitened coordinates (traced). ``None`` (default): the
+        normal-reference rule ``(4 / ((d + 2) N))^(1/(d + 4))`` in whitened coordinates,
+        recomputed each step.
     ridge : float, optional
         Ridge added to the ensemble covariance before whitening, relative to its mean variance
-        (``flowpost.kernels.whiten``). ``None``: ``16`` machine epsilons of the ensemble's dtype,
-        small enough not to blur a direction whose variance is ``1e-4`` of the mean one in
-        float32.
+        (as in ``flowpost.numerics.whiten``; traced). ``None``: ``16`` machine epsilons of the
+        ensemble's dtype, small enough not to blur a direction whose variance is ``1e-4`` of
+        the mean one in float32.
     block : int
-        Rows per block of the kernel density (memory ``O(N * block)``).
+        Rows per block of the kernel density (memory ``O(N * block)``; static).
     precondition : bool
         Solve in the preconditioned variables ``U`` (``Y = X + U A``, see the module docstring;
         default). ``False`` solves for ``Y`` directly (tolerance on the gradient in ``Y``).
+        Static.
 
     Stats per step
     --------------
     ``grad_evals``
-        Score evaluations per particle: one per evaluation of ``J`` by the inner solver.
+        Score evaluations per particle: one per evaluation of ``J`` by the inner solver
+        (summed over a window).
     ``inner_iters``
-        Iterations of the (single) ensemble solve.
+        Iterations of the (single) ensemble solve (averaged over a window).
     ``inner_residual``
         Its final max-abs gradient of ``J`` in the solver's variables (``U`` when preconditioned,
-        else ``Y``).
+        else ``Y``; the largest over a window).
     ``inner_capped``
         1 if the ensemble solve stopped above tolerance (at ``max_iters`` or on a non-finite
-        gradient), else 0; summed per window by the monitor. The state keeps the running total,
+        gradient), else 0; summed over a window. The state keeps the running total,
         returned by :meth:`report` as ``"inner_capped_total"``.
     ``kde_bandwidth``
-        The whitened bandwidth ``b`` used in the step.
+        The whitened bandwidth ``b`` used in the step (averaged over a window).
     """
 
     step_size: float = 1e-1
     solver: InnerSolver | None = None
     bandwidth: float | None = None
     ridge: float | None = None
-    block: int = DEFAULT_BLOCK
-    precondition: bool = True
+    block: int = static(DEFAULT_BLOCK)
+    precondition: bool = static(True)
+
+    stochastic = False  # deterministic: the monitor skips R-hat and ESS
+    reductions: ClassVar[dict[str, str]] = {"grad_evals": "sum", "inner_iters": "mean", "inner_residual": "max",
+                  "inner_capped": "sum", "kde_bandwidth": "mean"}
 
     def __post_init__(self):
-        _check_common(self)
+        object.__setattr__(self, "step_size", positive("step_size", self.step_size))
+        check_solver("solver", self.solver)
         for name in ("bandwidth", "ridge"):
             v = getattr(self, name)
-            if v is None:
-                continue
-            if isinstance(v, bool) or not isinstance(v, (int, float)):
-                raise TypeError(f"{name}: expected a positive float or None; got {type(v).__name__}")
-            if not (math.isfinite(float(v)) and float(v) > 0):
-                raise ValueError(f"{name}: must be a positive finite number or None; got {v}")
-        if isinstance(self.block, bool) or not isinstance(self.block, int) or self.block < 1:
-            raise ValueError(f"block: expected a positive int; got {self.block!r}")
+            if v is not None:
+                object.__setattr__(self, name, positive(name, v))
+        object.__setattr__(self, "block", integer("block", self.block, minimum=1))
+        boolean("precondition", self.precondition)
 
-    def start(self, target, x, key) -> JKOState:
+    def start(self, target, x: jax.Array, key: jax.Array) -> JKOState:
         n, d = x.shape
         if n < 2 or n <= d:
             raise ValueError(
-                f"init: JKO needs at least 2 particles and more particles than dimensions (N > d) "
-                f"for its whitened kernel density; got N={n}, d={d}"
+                f"init: expected at least 2 particles and more particles than dimensions (N > d) "
+                f"for JKO's whitened kernel density; got N={n}, d={d}"
             )
         return JKOState(x=x, capped_total=jnp.zeros((), jnp.int32))
 
-    def _ridge(self, dtype) -> float:
+    def _ridge(self, dtype) -> jax.Array:
         if self.ridge is not None:
-            return float(self.ridge)
-        return 16.0 * float(jnp.finfo(dtype).eps)
+            return jnp.asarray(self.ridge, dtype)
+        return 16 * jnp.finfo(dtype).eps * jnp.ones((), dtype)
 
-    def advance(self, target, state: JKOState, key):
+    def advance(self, target, state: JKOState, key: jax.Array, h: jax.Array) -> tuple[JKOState, dict]:
         x = state.x
-        h = jnp.asarray(self.step_size, x.dtype)
+        h = jnp.asarray(h, x.dtype)
         solver = self.solver if self.solver is not None else default_solver(x.dtype, JKO_MAX_ITERS)
-        white = jax.tree.map(jax.lax.stop_gradient, whiten(x, ridge=self._ridge(x.dtype)))
+        white = jax.tree.map(jax.lax.stop_gradient, _whitening(x, self._ridge(x.dtype)))
         if self.bandwidth is None:
             b = jax.lax.stop_gradient(normal_reference_bandwidth(white.apply(x)))
         else:
@@ -236,4 +266,6 @@ class JKO:
         return JKOState(x=y, capped_total=state.capped_total + capped), stats
 
     def report(self, state: JKOState) -> dict:
+        """Host-side figures: ``inner_capped_total``, the ensemble solves that stopped above
+        tolerance over the run."""
         return {"inner_capped_total": int(state.capped_total)}

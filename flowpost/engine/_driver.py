@@ -1,0 +1,373 @@
+"""``run``: move an ensemble with a stepper under a step-size controller and the monitor.
+
+Steps are taken in compiled windows: one ``jit``-compiled ``lax.scan`` over ``window`` steps
+per (stepper structure, controller structure, target, ensemble shape). The stepper and the
+controller are pytrees passed as ordinary arguments, so their numbers (step sizes,
+frictions, tolerances) are traced: a new step size, a halving after a blow-up or an adapted
+step never recompiles. The scanned carry is ``(stepper state, controller state, flow
+time)``; step ``t`` runs with ``h = controller.step_size(cstate, t)`` and the key
+``fold_in(key, t)``, so the key stream does not depend on the window length and a resumed run
+continues exactly as an uninterrupted one. A final partial window reuses the compiled window
+with the extra steps masked. The flow time is the sum of the steps taken.
+
+Between windows, in Python: the monitor's record and verdict, the progress bar, the stop
+rules (step budget, time budget, the monitor's own rules), checkpoints, and the roll-back
+to the last good window when the monitor reports a blow-up (the controller may then offer a
+smaller step: :class:`~flowpost.Halving`). A ``KeyboardInterrupt`` returns
+the last completed window, marked as interrupted.
+"""
+from __future__ import annotations
+
+import os
+import time
+from functools import partial
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .._validate import choice, fail, integer, non_negative
+from ..model._target import Target, as_target
+from ..steppers.base import check_stats, check_stepper
+from ._checkpoint import fingerprint, load_checkpoint, save_checkpoint, target_fingerprint
+from ._controllers import Controller, Halving, as_controller
+from ._history import History
+from ._monitor import Monitor
+from ._result import Result
+
+__all__ = ["run", "evolve", "Carry", "resolve_controller", "DRIVER_REDUCTIONS"]
+
+START_SALT = 0x7FFFFFFF  # the start key is fold_in(key, START_SALT); step t uses fold_in(key, t)
+TAPE_SALT = 0x7FFFFFFE  # the taped particles are a random subset drawn with fold_in(key, TAPE_SALT)
+
+#: Stats the driver adds to every step's: the step size used.
+DRIVER_REDUCTIONS = {"step_size": "mean"}
+
+
+class Carry(NamedTuple):
+    """What the compiled window carries from step to step."""
+
+    state: Any
+    cstate: Any
+    flow_time: jax.Array
+
+
+def _one_step(stepper, controller, target, carry: Carry, key, t):
+    h = jnp.asarray(controller.step_size(carry.cstate, t), carry.state.x.dtype)
+    new, stats = stepper.advance(target, carry.state, jax.random.fold_in(key, t), h)
+    cstate = controller.update(carry.cstate, t, stats)
+    stats = {**stats, "step_size": h}
+    return Carry(new, cstate, carry.flow_time + h), stats
+
+
+def _window_body(stepper, controller, target, carry, key, t0, n_active, tape_index, length):
+    def body(c, i):
+        t = t0 + i
+
+        def do(c):
+            return _one_step(stepper, controller, target, c, key, t)
+
+        if length == 1:
+            new, stats = do(c)
+        else:
+            stats_shape = jax.eval_shape(lambda c: do(c)[1], c)
+
+            def skip(c):
+                return c, jax.tree_util.tree_map(lambda a: jnp.zeros(a.shape, a.dtype), stats_shape)
+
+            new, stats = jax.lax.cond(i < n_active, do, skip, c)
+        taped = new.state.x[tape_index] if tape_index.shape[0] else None
+        return new, (stats, taped)
+
+    carry, (stats, taped) = jax.lax.scan(body, carry, jnp.arange(length, dtype=jnp.int32))
+    return carry, stats, taped
+
+
+_window = jax.jit(_window_body, static_argnames=("length",))
+
+
+@jax.jit
+def _start(stepper, controller, target, x, key):
+    state = stepper.start(target, x, jax.random.fold_in(key, START_SALT))
+    return Carry(state, controller.start(x.dtype), jnp.zeros((), x.dtype))
+
+
+@jax.jit
+def _value_and_score(target, x):
+    return target.value_and_score(x)
+
+
+def _check_start(target: Target, x: jax.Array) -> None:
+    logp, score = _value_and_score(target, x)
+    logp, score = np.asarray(logp), np.asarray(score)
+    bad_lp = ~np.isfinite(logp)
+    bad_sc = ~np.isfinite(score)
+    bad = bad_lp | bad_sc.any(axis=1)
+    if bad.any():
+        coords = target.layout.coordinate_names()
+        slots = {c: c.split("[")[0] for c in coords}
+        params = sorted({slots[coords[j]] for j in np.nonzero(bad_sc.any(axis=0))[0]})
+        what = []
+        if bad_lp.any():
+            what.append(f"log-density non-finite at {int(bad_lp.sum())}")
+        if bad_sc.any():
+            what.append(f"score non-finite at {int(bad_sc.any(axis=1).sum())} (parameters: {', '.join(params)})")
+        raise ValueError(
+            f"init: expected starting particles where log_p and its score are finite; got "
+            f"{int(bad.sum())} of {x.shape[0]} particles with non-finite values "
+            f"({'; '.join(what)}); first bad particle index {int(np.argmax(bad))}. Start the "
+            "particles where log_p is finite (e.g. near the prior's centre)."
+        )
+
+
+def resolve_controller(stepper, step_size: Any, on_blowup: str) -> Controller:
+    """The run's controller: ``step_size`` (a number or a controller) when given, else the
+    stepper's default; wrapped in :class:`Halving` for ``on_blowup="halve"``."""
+    controller = stepper.default_controller() if step_size is None else as_controller(step_size)
+    if on_blowup == "halve" and not isinstance(controller, Halving):
+        controller = Halving(controller)
+    return controller
+
+
+def check_step_contract(stepper, controller: Controller, target: Target, carry: Carry, key) -> dict[str, str]:
+    """Trace one step (no compilation) to check the stats against the declarations and the
+    controller's needs; returns the window's reductions."""
+    def bare_step(carry, key):
+        h = jnp.asarray(controller.step_size(carry.cstate, jnp.zeros((), jnp.int32)), carry.state.x.dtype)
+        return stepper.advance(target, carry.state, key, h)[1]
+
+    inner = jax.eval_shape(bare_step, carry, key)
+    check_stats(stepper, inner)
+    missing = [k for k in controller.requires if k not in inner]
+    if missing:
+        raise TypeError(
+            f"step_size: expected a stepper that reports {missing} for {type(controller).__name__}; "
+            f"got {type(stepper).__name__}, whose stats are {sorted(inner)}"
+        )
+    jax.eval_shape(partial(_one_step, stepper, controller, target), carry, key, jnp.zeros((), jnp.int32))
+    bad = {k: v.shape for k, v in inner.items() if v.shape != ()}
+    if bad:
+        raise TypeError(f"stepper: expected scalar stats from {type(stepper).__name__}.advance; got shapes {bad}")
+    return {**stepper.reductions, **DRIVER_REDUCTIONS}
+
+
+def _check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress):
+    steps = integer("steps", steps, minimum=0)
+    window = integer("window", window, minimum=1)
+    choice("on_blowup", on_blowup, ("stop", "halve"))
+    if not isinstance(key, jax.Array):
+        raise fail("key", "a JAX PRNG key such as jax.random.key(0)", key, TypeError)
+    if time_budget is not None:
+        non_negative("time_budget", time_budget)
+    integer("checkpoint_every", checkpoint_every, minimum=1)
+    if not isinstance(progress, bool):
+        raise fail("progress", "True or False", progress, TypeError)
+    return steps, window
+
+
+def _check_key(key: jax.Array, name: str = "key") -> None:
+    typed = jnp.issubdtype(key.dtype, jax.dtypes.prng_key)
+    if typed and key.shape == ():
+        return
+    if not typed and key.dtype == jnp.uint32 and key.shape == (2,):
+        return
+    raise fail(name, "one JAX PRNG key such as jax.random.key(0)", key, TypeError)
+
+
+def _tape_index(key, n: int, m: int) -> jax.Array:
+    """A fixed random subset of ``m`` of the ``n`` particles, drawn from the run's key."""
+    if m <= 0:
+        return jnp.zeros((0,), jnp.int32)
+    return jnp.sort(jax.random.choice(jax.random.fold_in(key, TAPE_SALT), n, (m,), replace=False)).astype(jnp.int32)
+
+
+def identity_of(stepper, controller, target) -> dict:
+    """The fingerprints a checkpoint must match."""
+    return {"stepper": fingerprint(stepper), "controller": fingerprint(controller),
+            "target": target_fingerprint(target)}
+
+
+def run(
+    target: Target | Callable[..., Any],
+    stepper,
+    init,
+    *,
+    key: jax.Array,
+    steps: int = 1000,
+    step_size: float | Controller | None = None,
+    window: int = 100,
+    monitor: Monitor | None = None,
+    time_budget: float | None = None,
+    progress: bool = True,
+    checkpoint: str | os.PathLike | None = None,
+    checkpoint_every: int = 10,
+    resume: str | os.PathLike | None = None,
+    on_blowup: str = "stop",
+) -> Result:
+    """Move the ensemble ``init`` towards the target with ``stepper``.
+
+    Parameters
+    ----------
+    target : Target or callable
+        The posterior; a bare callable ``log_p(theta)`` is wrapped in :class:`Target`.
+    stepper : Stepper
+        A stepper such as ``flowpost.Langevin(step_size=1e-3)``; see
+        :mod:`flowpost.steppers.base` for the protocol.
+    init : pytree
+        Starting particles in the user's (constrained) parametrisation, every leaf with a
+        leading particle axis ``N`` (a plain ``(N, d)`` array included).
+    key : jax PRNG key
+        The run's key; step ``t`` uses ``jax.random.fold_in(key, t)``.
+    steps : int
+        Step budget (total, counting steps done before a resume).
+    step_size : float or Controller, optional
+        The step-size controller (:mod:`flowpost.engine` (controllers)): a number means a
+        constant step. Default: the stepper's own (``stepper.default_controller()``: a constant
+        step at its ``step_size``, or acceptance targeting for ``MALA(tune_steps=...)``).
+    window : int
+        Steps per compiled window; the monitor reads the ensemble after each.
+    monitor : Monitor, optional
+        Defaults to :class:`flowpost.Monitor`.
+    time_budget : float, optional
+        Wall-clock seconds after which the run stops at the end of the current window.
+    progress : bool
+        Show a tqdm progress bar with the monitor's headline figures.
+    checkpoint : path, optional
+        Write a checkpoint (``.npz``) every ``checkpoint_every`` windows and at the end.
+    resume : path, optional
+        Continue from a checkpoint written by a run with the same stepper, controller, target
+        and init shape (checked by structural fingerprints); the key stream continues where it
+        stopped (the checkpoint's key is used).
+    on_blowup : {"stop", "halve"}
+        On a blow-up the ensemble is rolled back to the last good window; then the run stops
+        with the reason ("stop") or the step is halved and the run goes on ("halve": the
+        controller is wrapped in :class:`~flowpost.Halving`, at most 10
+        halvings).
+
+    Returns
+    -------
+    Result
+        Particles in the user's pytree, the monitor's history, why the run stopped.
+    """
+    target = as_target(target)
+    check_stepper(stepper)
+    steps, window = _check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress)
+    _check_key(key)
+    if monitor is not None and not isinstance(monitor, Monitor):
+        raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
+    controller = resolve_controller(stepper, step_size, on_blowup)
+    bound, x0 = target.bind(init)
+    _check_start(bound, x0)
+    monitor = Monitor() if monitor is None else monitor
+
+    carry = _start(stepper, controller, bound, x0, key)
+    reductions = check_step_contract(stepper, controller, bound, carry, key)
+    identity = identity_of(stepper, controller, bound)
+    step = 0
+    history = History()
+    if resume is not None:
+        carry, step, key, history = load_checkpoint(resume, carry, identity)
+    monitor.open(bound, stepper, carry.state)
+    tape_index = _tape_index(key, x0.shape[0], min(monitor.tape_particles, x0.shape[0]))
+
+    good, good_step = carry, step
+    status, reason = "done", f"step budget reached ({steps} steps)"
+    events: list[str] = []
+    t_start = time.perf_counter()
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=steps, initial=min(step, steps), unit="step", leave=False)
+    windows_done = 0
+    try:
+        while step < steps:
+            n = min(window, steps - step)
+            new, stats, taped = _window(stepper, controller, bound, carry, key, jnp.asarray(step, jnp.int32),
+                                        jnp.asarray(n, jnp.int32), tape_index, length=window)
+            stats = {k: np.asarray(v)[:n] for k, v in jax.device_get(stats).items()}
+            taped = None if taped is None else np.asarray(taped)[:n]
+            elapsed = time.perf_counter() - t_start
+            record = monitor.read(bound, stepper, new.state, stats, taped, step + n, elapsed,
+                                  flow_time=float(new.flow_time), reductions=reductions)
+            history.append(record)
+            verdict = monitor.judge(history)
+            if verdict.action == "rewind":
+                event: dict[str, Any] = {"step": int(step + n), "event": "rollback", "reason": verdict.reason,
+                                         "back_to": int(good_step)}
+                carry, step = good, good_step
+                smaller = controller.rewind(carry.cstate)
+                if smaller is not None:
+                    carry = carry._replace(cstate=smaller)
+                    good = carry
+                    event["action"] = f"halved the step: {controller.describe(smaller)}"
+                    history.append(event)
+                    events.append(f"{verdict.reason}: rolled back to step {good_step}, {event['action']}")
+                    monitor.open(bound, stepper, carry.state)
+                    continue
+                history.append(event)
+                status = "blow-up"
+                reason = (f"{verdict.reason}; returned the last good ensemble (step {good_step}). "
+                          "Try a smaller step_size, on_blowup='halve', or an implicit stepper "
+                          "(ImplicitLangevin, JKO).")
+                break
+            carry, step = new, step + n
+            good, good_step = carry, step
+            windows_done += 1
+            if bar is not None:
+                bar.update(n)
+                bar.set_postfix(monitor.headline(record), refresh=False)
+            if checkpoint is not None and windows_done % checkpoint_every == 0:
+                save_checkpoint(checkpoint, carry, step, key, history, identity, window)
+            if verdict.action == "stop":
+                status, reason = "stopped", verdict.reason
+                break
+            if time_budget is not None and elapsed >= float(time_budget):
+                status, reason = "stopped", f"time budget reached ({elapsed:.1f} s of {time_budget} s)"
+                break
+    except KeyboardInterrupt:
+        carry, step = good, good_step
+        status, reason = "interrupted", f"interrupted by the user at step {step}"
+    finally:
+        if bar is not None:
+            bar.close()
+    if checkpoint is not None and status != "interrupted":
+        save_checkpoint(checkpoint, carry, step, key, history, identity, window)
+    report = {**stepper.report(carry.state), **controller.report(carry.cstate)}
+    return Result(
+        target=bound,
+        state=carry.state,
+        history=history,
+        status=status,
+        reason=reason,
+        steps=step,
+        elapsed=time.perf_counter() - t_start,
+        stepper=stepper,
+        report=report,
+        events=events,
+        controller_description=controller.describe(carry.cstate),
+    )
+
+
+def evolve(stepper, target: Target, x: jax.Array, key: jax.Array, steps: int,
+           controller: Controller | None = None):
+    """Start ``stepper`` at the unconstrained ensemble ``x`` on a *bound* target and take
+    ``steps`` steps, all inside one traced function: no monitor, no Python between steps.
+
+    The key stream and the step sizes are those of :func:`run` (start:
+    ``fold_in(key, START_SALT)``; step ``t``: ``fold_in(key, t)``; ``controller`` defaults to
+    the stepper's own), so ``evolve`` and a ``run`` with the same key agree. Being pure, it can
+    be ``jit``-ted and ``vmap``-ped, for example over the data of many targets (simulation-based
+    calibration does this). Returns the final state.
+    """
+    controller = stepper.default_controller() if controller is None else controller
+    state = stepper.start(target, x, jax.random.fold_in(key, START_SALT))
+    carry = Carry(state, controller.start(x.dtype), jnp.zeros((), x.dtype))
+
+    def body(c, t):
+        new, _ = _one_step(stepper, controller, target, c, key, t)
+        return new, None
+
+    carry, _ = jax.lax.scan(body, carry, jnp.arange(int(steps), dtype=jnp.int32))
+    return carry.state
