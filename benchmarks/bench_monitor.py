@@ -12,8 +12,9 @@ from pathlib import Path
 import jax
 
 sys.path.insert(0, str(Path(__file__).parent))
-import flowpost as fp  # noqa: E402
-from common import breast_cancer_data, logistic_log_p  # noqa: E402
+from common import breast_cancer_data, logistic_log_p
+
+import flowpost as fp
 
 N, STEPS, H = 4096, 1000, 1e-4
 

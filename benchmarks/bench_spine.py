@@ -14,8 +14,9 @@ import jax
 import jax.numpy as jnp
 
 sys.path.insert(0, str(Path(__file__).parent))
-import flowpost as fp  # noqa: E402
-from common import breast_cancer_data, logistic_log_p  # noqa: E402
+from common import breast_cancer_data, logistic_log_p
+
+import flowpost as fp
 
 N, STEPS, H = 4096, 1000, 1e-4
 

@@ -37,8 +37,7 @@ import numpy as np
 from jax.scipy.stats import norm
 
 import flowpost as fp
-from flowpost.steppers import ImplicitLangevin
-from flowpost.steppers import JKO
+from flowpost.steppers import JKO, ImplicitLangevin
 
 try:
     from flowpost.steppers import MALA
@@ -136,7 +135,7 @@ def main():
                     help="step sizes to try (with --only), replacing the default grid")
     args = ap.parse_args()
 
-    lam, q, w = make_problem()
+    _, _, w = make_problem()
     w_j = jnp.asarray(w, jnp.float32)
     target = fp.Target(log_p, data=w_j)
     x0 = 2.0 * jax.random.normal(jax.random.key(0), (N, D))

@@ -73,7 +73,8 @@ def _library_loop(stepper, target, steps):
     @jax.jit
     def loop(state):
         def body(st, t):
-            return stepper.advance(target, st, jax.random.fold_in(jax.random.key(1), t), jnp.asarray(stepper.step_size))[0], None
+            key = jax.random.fold_in(jax.random.key(1), t)
+            return stepper.advance(target, st, key, jnp.asarray(stepper.step_size))[0], None
         return jax.lax.scan(body, state, jnp.arange(steps))[0]
     return loop
 

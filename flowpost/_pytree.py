@@ -16,7 +16,7 @@ from typing import Any, TypeVar
 
 import jax
 
-__all__ = ["pytree_dataclass", "static", "leaf_names", "static_names", "unchecked"]
+__all__ = ["leaf_names", "pytree_dataclass", "static", "static_names", "unchecked"]
 
 T = TypeVar("T")
 

@@ -14,13 +14,23 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 import numpy as np
 
 __all__ = [
-    "fail", "describe", "real", "positive", "non_negative", "open_unit", "integer",
-    "boolean", "choice", "callable_value", "instance",
+    "boolean",
+    "callable_value",
+    "choice",
+    "describe",
+    "fail",
+    "instance",
+    "integer",
+    "non_negative",
+    "open_unit",
+    "positive",
+    "real",
 ]
 
 
@@ -45,7 +55,7 @@ def fail(name: str, expected: str, value: Any, kind: type[Exception] = ValueErro
 
 
 def _as_float(name: str, value: Any, expected: str) -> float:
-    if isinstance(value, (bool, np.bool_)) or isinstance(value, (str, bytes)):
+    if isinstance(value, (bool, np.bool_, str, bytes)):
         raise fail(name, expected, value, TypeError)
     if isinstance(value, numbers.Real):
         return float(value)

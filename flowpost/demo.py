@@ -74,8 +74,9 @@ def main(argv: list[str] | None = None) -> int:
     print()
     print(result.summary())
     print("\nMonitor trace (one row per window of 250 steps):")
+    recorded = result.history.keys()  # a list of column names (iterating a History yields its rows)
     names = [k for k in ("step", "mean_logp", "centre_drift", "spread_drift", "ksd", "accept", "grad_evals")
-             if k in result.history.keys()]
+             if k in recorded]
     print(result.history.table(names))
     print(f"\nTrue values used to generate the log: k = {TRUE['k']}, room = {TRUE['room']}, sigma = {TRUE['sigma']}")
     _plot(result, t, temp, out_png)

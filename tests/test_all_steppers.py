@@ -4,9 +4,10 @@ Target: a correlated 2-D Gaussian, mean (1, -1), covariance [[1, 0.5], [0.5, 1]]
 stepper starts from the same off-centre ensemble of N = 256 particles and runs with the
 default :class:`flowpost.Monitor`. Checks: the run completes with finite particles; the
 monitor wrote its figures (discrepancy, mean log-density; R-hat only for stochastic
-steppers) and the stepper's stats (grad_evals); the discrepancy fell to below half its starting value; the ensemble mean is
-within 0.4 of the target's in each coordinate (about 6 Monte-Carlo standard errors of
-sd/sqrt(N) = 0.0625, leaving room for each stepper's own bias, e.g. ULA's O(h)).
+steppers) and the stepper's stats (grad_evals); the discrepancy fell to below half its
+starting value; the ensemble mean is within 0.4 of the target's in each coordinate (about 6
+Monte-Carlo standard errors of sd/sqrt(N) = 0.0625, leaving room for each stepper's own
+bias, e.g. ULA's O(h)).
 """
 import jax
 import jax.numpy as jnp

@@ -4,7 +4,6 @@ for a planted mismatch between simulator and likelihood."""
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
-import numpy as np
 import pytest
 
 import flowpost as fp

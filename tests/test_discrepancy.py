@@ -21,7 +21,6 @@ from scipy import integrate, stats
 from flowpost.diagnostics import squared_stein_discrepancy, stein_discrepancy, stein_kernel
 from flowpost.numerics import IMQ, RBF
 
-
 # --------------------------------------------------------------------------
 # independent reference: Stein kernel by automatic differentiation
 # --------------------------------------------------------------------------

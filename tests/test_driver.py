@@ -1,7 +1,6 @@
 """The run loop: reproducibility, checkpoints, stop rules, nothing lost on blow-up or
 interrupt, and the result file."""
 import json
-import zipfile
 
 import jax
 import jax.numpy as jnp
@@ -127,7 +126,7 @@ def test_summary_save_load_round_trip(tmp_path):
 def test_load_rejects_foreign_and_truncated_files(tmp_path):
     other = tmp_path / "other.npz"
     np.savez(other, a=np.arange(3))
-    with pytest.raises(ValueError, match="path: .* not a readable flowpost result"):
+    with pytest.raises(ValueError, match=r"path: .* not a readable flowpost result"):
         fp.load(other)
     r = fp.run(lambda x: -0.5 * jnp.sum(x**2), fp.Langevin(step_size=0.1), jnp.ones((8, 1)),
                key=jax.random.key(0), steps=10, progress=False)

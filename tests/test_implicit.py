@@ -18,8 +18,7 @@ from scipy.stats import norm as sp_norm
 
 import flowpost as fp
 from flowpost.numerics import InnerSolver
-from flowpost.steppers import ImplicitLangevin, default_solver
-from flowpost.steppers import JKO
+from flowpost.steppers import JKO, ImplicitLangevin, default_solver
 
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 

@@ -349,7 +349,7 @@ def test_vmapped_sweep_over_solver_numbers():
     with jax.enable_x64(True):
         solvers = [InnerSolver(method="sgd", learning_rate=lr, tol=t, max_iters=500) for lr, t in zip(lrs, tols)]
         stacked = jax.tree.map(lambda *v: jnp.asarray(v), *solvers)
-        fun = lambda x: 0.5 * a * jnp.sum((x - 1.0) ** 2)  # noqa: E731
+        fun = lambda x: 0.5 * a * jnp.sum((x - 1.0) ** 2)
         x, rep = jax.jit(jax.vmap(lambda s: minimise(s, fun, jnp.zeros(1))))(stacked)
     np.testing.assert_allclose(np.asarray(x)[:, 0], 1.0, atol=np.max(tols) / a * 1.01)  # |x - 1| = |grad| / a
     k_real = np.log(tols / a) / np.log(np.abs(1.0 - lrs * a))

@@ -32,7 +32,6 @@ from flowpost.numerics import (
     whiten,
 )
 
-
 # --------------------------------------------------------------------------
 # independent numpy references
 # --------------------------------------------------------------------------
@@ -103,7 +102,7 @@ def test_kernel_value_and_gradient(kernel, kind, param):
         x = _points(0, 15, 3)
         y = _points(1, 15, 3)
         k_ref, g_ref = np_kernel(kind, param, x, y)
-        value, grad, auto, (f, df, d2f), f1, f2 = evaluate(x, y, jnp.linspace(0.0, 6.0, 13))
+        value, grad, auto, (_, df, d2f), f1, f2 = evaluate(x, y, jnp.linspace(0.0, 6.0, 13))
         # closed-form values and gradients against the textbook formulas
         np.testing.assert_allclose(value, k_ref, rtol=1e-12)
         np.testing.assert_allclose(grad, g_ref, rtol=1e-10, atol=1e-14)
@@ -164,7 +163,7 @@ def test_normal_reference_bandwidth_formula():
 # blocked kernel sums
 # --------------------------------------------------------------------------
 
-@pytest.mark.parametrize("kernel,kind,param", KERNELS + [(RBF(), "rbf", None)])
+@pytest.mark.parametrize("kernel,kind,param", [*KERNELS, (RBF(), "rbf", None)])
 def test_kernel_sums_match_brute_force(kernel, kind, param):
     with jax.enable_x64(True):
         x_src = _points(4, 37, 3)
@@ -366,7 +365,8 @@ def test_whiten_against_numpy_covariance():
         np.testing.assert_allclose(w.chol @ w.chol.T, cov_reg, rtol=1e-10)
         np.testing.assert_allclose(w.mean, x.mean(axis=0), rtol=1e-12)
         z = np.asarray(w.apply(x))
-        np.testing.assert_allclose(z, np.linalg.solve(np.linalg.cholesky(cov_reg), (x - x.mean(0)).T).T, rtol=1e-9, atol=1e-12)
+        z_ref = np.linalg.solve(np.linalg.cholesky(cov_reg), (x - x.mean(0)).T).T
+        np.testing.assert_allclose(z, z_ref, rtol=1e-9, atol=1e-12)
         np.testing.assert_allclose(w.invert(z), x, rtol=1e-10)
         assert float(w.log_abs_det()) == pytest.approx(0.5 * np.linalg.slogdet(cov_reg)[1], rel=1e-10)
     # fewer particles than dimensions: still invertible and finite (float32)

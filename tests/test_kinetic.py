@@ -10,8 +10,7 @@ import numpy as np
 import pytest
 
 import flowpost as fp
-from flowpost.steppers import KineticLangevin
-from flowpost.steppers import Drift, Friction, Kick, Split
+from flowpost.steppers import Drift, Friction, Kick, KineticLangevin, Split
 
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 
@@ -70,7 +69,8 @@ def test_baoab_one_score_per_step_and_carried_score():
                steps=50, window=25, progress=False)
     evals = [rec["grad_evals"] for rec in r.history.records if "grad_evals" in rec]
     assert evals == [25.0, 25.0]
-    np.testing.assert_allclose(np.asarray(r.state.parts[0].grad), -np.asarray(r.state.x), rtol=1e-5, atol=1e-6)  # the kick keeps it
+    # the kick keeps it
+    np.testing.assert_allclose(np.asarray(r.state.parts[0].grad), -np.asarray(r.state.x), rtol=1e-5, atol=1e-6)
     # the result reports positions only, with the user's shape
     assert np.shape(r.particles) == (n, 2)
 

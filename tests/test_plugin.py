@@ -13,21 +13,20 @@ from __future__ import annotations
 
 import textwrap
 
-import pytest
-
-from flowpost.testing.plugin import describe_rank_shape
-
 # The in-process runs below (pytester) restore sys.modules after each run; a compiled
 # extension such as jaxlib must not be dropped and imported again (the process aborts), so
 # everything the fixtures import is imported here first, outside the runs. flowpost's public
 # names are lazy (PEP 562), so the plugin alone would not have imported them.
-import jax  # noqa: E402,F401
-import flowpost.testing.calibration  # noqa: E402,F401
-import flowpost.testing.checks  # noqa: E402,F401
-import flowpost.testing.moments  # noqa: E402,F401
-import flowpost.testing.references  # noqa: E402,F401
-import flowpost.testing.region  # noqa: E402,F401
-import flowpost.steppers  # noqa: E402,F401
+import jax  # noqa: F401
+import pytest
+
+import flowpost.steppers
+import flowpost.testing.calibration
+import flowpost.testing.checks
+import flowpost.testing.moments
+import flowpost.testing.references
+import flowpost.testing.region  # noqa: F401
+from flowpost.testing.plugin import describe_rank_shape
 
 pytest_plugins = ["pytester"]
 

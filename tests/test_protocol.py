@@ -195,7 +195,7 @@ def test_langevin_is_the_written_out_update():
 def test_steppers_are_pytrees_with_traced_numbers():
     kl = fp.KineticLangevin(step_size=0.1, friction=2.5)
     assert sorted(jax.tree_util.tree_leaves(kl)) == [0.1, 2.5]
-    leaves, tree = jax.tree_util.tree_flatten(fp.Split((fp.Kick(), fp.Friction(3.0)), order="strang"))
+    leaves, _ = jax.tree_util.tree_flatten(fp.Split((fp.Kick(), fp.Friction(3.0)), order="strang"))
     assert 3.0 in leaves
     assert "strang" not in leaves  # structure is static
     # a traced friction: one compiled function serves every value

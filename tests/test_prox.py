@@ -18,8 +18,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.optimize
-from hypothesis import given, settings
-from hypothesis import strategies as st
+from hypothesis import given, settings, strategies as st
 from hypothesis.extra import numpy as hnp
 
 from flowpost.numerics import InnerSolver
@@ -119,8 +118,8 @@ def group_prox_reference(v, h, lam):
     either x = 0 or a smooth local minimum, which scipy's BFGS finds from
     x = v; the candidate with the lower objective is returned.
     """
-    obj = lambda x: lam * np.linalg.norm(x) + np.sum((x - v) ** 2) / (2.0 * h)  # noqa: E731
-    jac = lambda x: lam * x / max(np.linalg.norm(x), 1e-300) + (x - v) / h  # noqa: E731
+    obj = lambda x: lam * np.linalg.norm(x) + np.sum((x - v) ** 2) / (2.0 * h)
+    jac = lambda x: lam * x / max(np.linalg.norm(x), 1e-300) + (x - v) / h
     res = scipy.optimize.minimize(obj, v, jac=jac, method="BFGS", options={"gtol": 1e-12})
     zero = np.zeros_like(v)
     return res.x if obj(res.x) < obj(zero) else zero
@@ -209,7 +208,7 @@ def test_dtype_and_shape_preserved_and_jit_with_traced_step():
     ]
     # all terms static, step size traced: one compiled program
     outs = jax.jit(lambda v, h: [term(v, h) for term in terms])(v32, jnp.float32(0.3))
-    for term, out in zip(terms, outs):
+    for out in outs:
         assert out.dtype == jnp.float32 and out.shape == v32.shape
     # the (d,) form gives the rows of the (N, d) form
     np.testing.assert_allclose(np.asarray(terms[4](v32[3], 0.3)), np.asarray(outs[4][3]), rtol=1e-6)
@@ -255,7 +254,7 @@ def test_prox_by_solver_quadratic_closed_form():
     # g(x) = |x|^2 / (2 s2): prox_{hg}(v) = v / (1 + h / s2) (textbook closed form)
     s2, h = 0.4, 0.9
     v = jax.random.normal(jax.random.key(2), (30, 3)) * 3.0
-    g = lambda x: jnp.sum(x**2) / (2.0 * s2)  # noqa: E731
+    g = lambda x: jnp.sum(x**2) / (2.0 * s2)
     solver = InnerSolver(tol=1e-5, max_iters=50)
     x, rep = jax.jit(lambda v: prox_by_solver(g, v, h, solver))(v)
     assert x.dtype == jnp.float32 and x.shape == v.shape and rep.iters.shape == (30,)

@@ -20,10 +20,19 @@ import flowpost as fp
 from flowpost.engine import BareMonitor
 from flowpost.numerics import InnerSolver
 from flowpost.numerics.prox import Box, L1Penalty
-from flowpost.steppers import ForwardBackward, GaussianEntropy
-from flowpost.steppers import ProximalLangevin
 from flowpost.steppers import (
-    Drift, ExactMap, Explicit, Friction, HeatFlow, Kick, Proximal, Split, SplitState,
+    Drift,
+    ExactMap,
+    Explicit,
+    ForwardBackward,
+    Friction,
+    GaussianEntropy,
+    HeatFlow,
+    Kick,
+    Proximal,
+    ProximalLangevin,
+    Split,
+    SplitState,
 )
 
 Z = 5.0  # tolerance in Monte-Carlo standard errors
@@ -92,7 +101,8 @@ def test_lie_and_strang_stationary_variance_and_order():
         for a in a_values:
             h = float(a * S2_LS)
             stepper = Split((ExactMap(_potential_flow), HeatFlow()), step_size=h, order=order)
-            v = float(_time_averaged_second_moment(stepper, jnp.asarray(h, x0u.dtype), target, x0u, jax.random.key(5), burn, steps))
+            v = float(_time_averaged_second_moment(stepper, jnp.asarray(h, x0u.dtype), target, x0u,
+                                                   jax.random.key(5), burn, steps))
             expected = S2_LS * formula[order](a)
             rho = np.exp(-a)
             se = expected * np.sqrt(2 / (n * steps) * (1 + rho**2) / (1 - rho**2))
@@ -345,7 +355,7 @@ Y_OBS, SIGMA, RATE = 0.5, 1.0, 2.0  # one observation y ~ N(theta, sigma^2); Lap
 
 def _quadrature_moments(neg_log):
     """Mean, variance and P(theta > 0) of exp(-neg_log) by scipy.integrate.quad."""
-    f = lambda t: np.exp(-neg_log(t))  # noqa: E731
+    f = lambda t: np.exp(-neg_log(t))
     kw = dict(points=[0.0], limit=200)
     z = si.quad(f, -20, 20, **kw)[0]
     m = si.quad(lambda t: t * f(t), -20, 20, **kw)[0] / z
@@ -385,9 +395,9 @@ def test_proximal_langevin_laplace_prior_against_quadrature():
     x0 = 0.13 + 0.5 * jax.random.normal(jax.random.key(1), (n, 1))
     biases, ses = [], []
     for lam in (0.8, 0.2, 0.05):
-        neg = lambda t, lam=lam: (t - Y_OBS) ** 2 / (2 * SIGMA**2) + _huber(t, lam)  # noqa: E731
+        neg = lambda t, lam=lam: (t - Y_OBS) ** 2 / (2 * SIGMA**2) + _huber(t, lam)
         smooth = _quadrature_moments(neg)
-        f = lambda t, neg=neg: np.exp(-neg(t))  # noqa: E731
+        f = lambda t, neg=neg: np.exp(-neg(t))
         z = si.quad(f, -20, 20, points=[0.0], limit=200)[0]
         m4 = si.quad(lambda t: (t - smooth[0]) ** 4 * f(t), -20, 20, points=[0.0], limit=200)[0] / z
         se = np.array([np.sqrt(smooth[1] / n), np.sqrt((m4 - smooth[1] ** 2) / n),
@@ -440,7 +450,7 @@ def test_box_constraint_by_projection_against_truncnorm():
     for i, h in enumerate((4e-3, 1e-3)):
         x0 = jax.random.uniform(jax.random.key(10 + i), (n, 1))
         r = fp.run(log_lik, ProximalLangevin(step_size=h, prox=Box(0.0, 1.0), variant="forward_prox"), x0,
-                   key=jax.random.key(20 + i), steps=int(round(1.5 / h)), window=500, progress=False)
+                   key=jax.random.key(20 + i), steps=round(1.5 / h), window=500, progress=False)
         u = r.unconstrained[:, 0].astype(np.float64)
         assert u.min() >= 0.0 and u.max() <= 1.0
         measured.append(np.array([u.mean(), u.var(ddof=1)]))

@@ -95,8 +95,12 @@ def test_support_errors_name_the_argument():
         fp.Target(_model, support={"sigmaa": fp.Positive()}).bind(_init())
     with pytest.raises(ValueError, match=r"init: 8 of 8 particles have 'a' outside its support"):
         fp.Target(_model, support={"a": fp.Positive()}).bind(_init())
-    with pytest.raises(ValueError, match=r"Interval: 'high' must exceed 'low'"):
+    with pytest.raises(ValueError, match=r"Interval.high: expected a number greater than low = 1"):
         fp.Interval(1.0, 0.0)
+    with pytest.raises(TypeError, match=r"Interval.low: expected a finite number"):
+        fp.Interval("a", 1.0)
+    with pytest.raises(ValueError, match=r"Interval.high: expected a finite number .*half-line"):
+        fp.Interval(0.0, float("inf"))
 
 
 def test_bad_stepper_and_key_are_named():

@@ -69,7 +69,7 @@ def _quad_mean_var(log_unnorm, coarse, to_param=lambda u: u, log_jacobian=lambda
     hi = coarse[min(inside[-1] + 1, coarse.size - 1)]
 
     def integral(power):
-        f = lambda u: to_param(u) ** power * np.exp(log_g(u)[0] - values[top])  # noqa: E731
+        f = lambda u: to_param(u) ** power * np.exp(log_g(u)[0] - values[top])
         return sum(scipy.integrate.quad(f, a, b, epsabs=0.0, epsrel=1e-10, limit=200)[0]
                    for a, b in ((lo, coarse[top]), (coarse[top], hi)))
 
@@ -307,7 +307,7 @@ def test_simulator_draws_theta_from_the_prior_and_posterior_draws_match(model):
     # One draw per call in a Python loop: every call reuses the same compiled samplers
     # (a batched or longer draw would compile them again, which dominates the cost here).
     num = 400
-    stack = lambda items: jax.tree.map(lambda *v: np.stack([np.asarray(x) for x in v]), *items)  # noqa: E731
+    stack = lambda items: jax.tree.map(lambda *v: np.stack([np.asarray(x) for x in v]), *items)
     sims = [model.simulate(k, 4) for k in jax.random.split(jax.random.key(3), num)]
     thetas, data = stack([t for t, _ in sims]), stack([d for _, d in sims])
     # Prior draws: Kolmogorov-Smirnov test (scipy.stats.kstest) of the first coordinate
@@ -547,7 +547,7 @@ def test_health_catches_jit_and_vmap_faults():
             return -x**2
         return -2 * x**2
 
-    with pytest.raises(AssertionError, match="fails under jax.jit"):
+    with pytest.raises(AssertionError, match=r"fails under jax\.jit"):
         assert_jit_matches_eager(branchy, jnp.float32(1.0))
 
     @jax.custom_batching.custom_vmap

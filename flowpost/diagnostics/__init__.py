@@ -1,11 +1,6 @@
 """Diagnostics that read an ensemble: the kernel Stein discrepancy, R-hat and ESS."""
 from __future__ import annotations
 
-from ._stein import (
-    stein_kernel as stein_kernel,
-    squared_stein_discrepancy as squared_stein_discrepancy,
-    stein_discrepancy as stein_discrepancy,
-)
 from ._mixing import (
     MIN_DRAWS_PER_CHAIN as MIN_DRAWS_PER_CHAIN,
     ThinnedTrail as ThinnedTrail,
@@ -16,5 +11,13 @@ from ._mixing import (
     rank_normalise as rank_normalise,
     split_rhat as split_rhat,
 )
+from ._stein import (
+    squared_stein_discrepancy as squared_stein_discrepancy,
+    stein_discrepancy as stein_discrepancy,
+    stein_kernel as stein_kernel,
+)
 
-__all__ = ['stein_kernel', 'squared_stein_discrepancy', 'stein_discrepancy', 'MIN_DRAWS_PER_CHAIN', 'ThinnedTrail', 'autocorrelation', 'bulk_ess', 'ess', 'plain_split_rhat', 'rank_normalise', 'split_rhat']
+__all__ = [
+    "MIN_DRAWS_PER_CHAIN", "ThinnedTrail", "autocorrelation", "bulk_ess", "ess", "plain_split_rhat",
+    "rank_normalise", "split_rhat", "squared_stein_discrepancy", "stein_discrepancy", "stein_kernel"
+]

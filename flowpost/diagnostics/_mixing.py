@@ -82,9 +82,7 @@ import numbers
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import fft as _sfft
-from scipy import special as _sspecial
-from scipy import stats as _sstats
+from scipy import fft as _sfft, special as _sspecial, stats as _sstats
 
 __all__ = [
     "MIN_DRAWS_PER_CHAIN",

@@ -83,7 +83,7 @@ from ..numerics._pairwise import _check_block
 Array = jax.Array
 ArrayLike = Any
 
-__all__ = ["stein_kernel", "squared_stein_discrepancy", "stein_discrepancy"]
+__all__ = ["squared_stein_discrepancy", "stein_discrepancy", "stein_kernel"]
 
 _HIGHEST = lax.Precision.HIGHEST
 

@@ -30,7 +30,7 @@ from ._controllers import Controller, as_controller
 from ._driver import (Carry, _check_run_args, _check_start, _tape_index, _window_body, check_step_contract,
                       resolve_controller, START_SALT)
 from ._history import History
-from ._monitor import Monitor
+from ._monitor import Monitor, chain_figures
 from ._result import Result
 
 __all__ = ["sweep"]
@@ -165,12 +165,25 @@ def sweep(
             taped = None if taped is None else np.asarray(taped)
             elapsed = time.perf_counter() - t_start
             keep = active.copy()
+            # the device figures of every member in one compiled call (the members' monitors
+            # share their settings: copies of one template)
+            measured = template.measure_batch(bound, new.state, mstep + n)
+            flow = np.asarray(new.flow_time)
+            host_states = jax.device_get(new.state)  # one transfer; members are numpy slices of it
+            records = {}
             for i in np.nonzero(n)[0]:
                 ni = int(n[i])
-                member = _member(new, int(i))
-                rec = monitors[i].read(bound, stepper, member.state, {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
-                                       None if taped is None else taped[i, :ni], int(mstep[i]) + ni, elapsed,
-                                       flow_time=float(member.flow_time), reductions=reductions)
+                records[i] = monitors[i].read(bound, stepper, _member(host_states, int(i)),
+                                              {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
+                                              None if taped is None else taped[i, :ni], int(mstep[i]) + ni, elapsed,
+                                              flow_time=float(flow[i]), reductions=reductions, measured=measured[i],
+                                              defer_chains=True)
+            # R-hat and ESS of every member's trails in one computation
+            ready = [(i, c) for i in records if (c := monitors[i].chains()) is not None and records[i]["n_nonfinite"] == 0]
+            for (i, _), figs in zip(ready, chain_figures([c for _, c in ready])):
+                records[i].update(figs)
+            for i, rec in records.items():
+                ni = int(n[i])
                 histories[i].append(rec)
                 verdict = monitors[i].judge(histories[i])
                 if verdict.action == "rewind":

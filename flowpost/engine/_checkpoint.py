@@ -16,6 +16,7 @@ Files are written to a unique temporary name in the target folder and renamed in
 """
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import hashlib
 import json
@@ -29,8 +30,14 @@ import numpy as np
 
 from ._history import History
 
-__all__ = ["fingerprint", "differences", "save_checkpoint", "load_checkpoint", "target_fingerprint",
-           "atomic_write"]
+__all__ = [
+    "atomic_write",
+    "differences",
+    "fingerprint",
+    "load_checkpoint",
+    "save_checkpoint",
+    "target_fingerprint",
+]
 
 CHECKPOINT_FORMAT = "flowpost-checkpoint"
 CHECKPOINT_VERSION = 2
@@ -53,7 +60,7 @@ def fingerprint(obj: Any) -> Any:
     if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
         fields = {f.name: fingerprint(obj.__dict__[f.name]) for f in dataclasses.fields(obj)}
         return {"class": _callable_name(type(obj)), "fields": fields}
-    if isinstance(obj, (np.ndarray, jax.Array)) or hasattr(obj, "__array__") and hasattr(obj, "dtype"):
+    if isinstance(obj, (np.ndarray, jax.Array)) or (hasattr(obj, "__array__") and hasattr(obj, "dtype")):
         arr = np.asarray(obj)
         if arr.ndim == 0:
             return repr(arr.item())
@@ -123,10 +130,8 @@ def atomic_write(path: str | os.PathLike, write) -> None:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
-        try:
+        with contextlib.suppress(OSError):
             os.unlink(tmp)
-        except OSError:
-            pass
         raise
 
 

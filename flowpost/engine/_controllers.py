@@ -36,7 +36,8 @@ Controllers
 """
 from __future__ import annotations
 
-from typing import Any, Callable, ClassVar
+from collections.abc import Callable
+from typing import Any, ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -45,7 +46,7 @@ import numpy as np
 from .._pytree import pytree_dataclass, static
 from .._validate import callable_value, fail, integer, open_unit, positive
 
-__all__ = ["Controller", "Constant", "Halving", "AcceptanceTarget", "Schedule", "as_controller"]
+__all__ = ["AcceptanceTarget", "Constant", "Controller", "Halving", "Schedule", "as_controller"]
 
 
 class Controller:

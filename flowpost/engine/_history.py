@@ -6,7 +6,8 @@ keeps them in order and converts them to plain arrays or a text table.
 """
 from __future__ import annotations
 
-from typing import Any, Iterator
+from collections.abc import Iterator
+from typing import Any
 
 import numpy as np
 
@@ -86,7 +87,8 @@ class History:
                 v = r.get(n)
                 if v is None:
                     cells.append(f"{'':>{width}}")
-                elif isinstance(v, (int, np.integer)) or (isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")):
+                elif isinstance(v, (int, np.integer)) or (
+                        isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")):
                     cells.append(f"{int(v):>{width}d}")
                 else:
                     cells.append(f"{float(v):>{width}.4g}")
@@ -97,7 +99,7 @@ class History:
         return [{k: _jsonable(v) for k, v in r.items()} for r in self.records]
 
     @classmethod
-    def from_json(cls, items: list[dict[str, Any]]) -> "History":
+    def from_json(cls, items: list[dict[str, Any]]) -> History:
         recs = []
         for r in items:
             rec = {}

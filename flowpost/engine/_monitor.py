@@ -65,7 +65,7 @@ from ..diagnostics._stein import stein_discrepancy
 from ..numerics import whiten
 from ..diagnostics._mixing import ThinnedTrail, bulk_ess, split_rhat
 
-__all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats"]
+__all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats", "chain_figures"]
 
 
 class Verdict(NamedTuple):
@@ -101,8 +101,7 @@ def summarise_stats(stats: dict[str, np.ndarray], reductions: dict[str, str]) ->
     return out
 
 
-@jax.jit
-def _ensemble_figures(target, x):
+def _ensemble_figures_body(target, x):
     finite = jnp.all(jnp.isfinite(x), axis=1)
     n_bad = jnp.sum(~finite)
     safe = jnp.where(finite[:, None], x, 0.0)
@@ -211,9 +210,26 @@ class Monitor:
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
+    def measure(self, target, state, step: int) -> dict[str, Any]:
+        """The figures computed on the device for one window (ensemble moments, mean
+        log-density, non-finite count and, when on, the discrepancy), in one compiled call."""
+        return jax.device_get(_measure(target, state.x, _score_of(state), jnp.asarray(step, jnp.int32),
+                                       self._subset(state.x.shape[0]), self.whitened, self.discrepancy))
+
+    def measure_batch(self, target, states, steps) -> list[dict[str, Any]]:
+        """:meth:`measure` for a batch of ensembles (a leading member axis on every leaf of
+        ``states``, one step per member) in one compiled, ``vmap``-ped call."""
+        out = jax.device_get(_measure_batch(target, states.x, _score_of(states), jnp.asarray(steps, jnp.int32),
+                                            self._subset(states.x.shape[1]), self.whitened, self.discrepancy))
+        return [{k: v[i] for k, v in out.items()} for i in range(len(steps))]
+
+    def _subset(self, n: int) -> int:
+        return min(self.discrepancy_points, n)
+
     def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
-             reductions: dict[str, str]) -> dict[str, Any]:
-        fig = jax.device_get(_ensemble_figures(target, state.x))
+             reductions: dict[str, str], measured: dict[str, Any] | None = None,
+             defer_chains: bool = False) -> dict[str, Any]:
+        fig = self.measure(target, state, step) if measured is None else measured
         sizes = np.asarray(stats["step_size"], dtype=float)
         now = float(flow_time)
         if self._clock is None:  # first window since open(): the flow time of the steps before it
@@ -239,21 +255,20 @@ class Monitor:
                 self._first_spread = max(self._first_spread, float(np.max(rec["spread"], initial=0.0)))
                 self._scale_set = True
             if self.discrepancy:
-                score = state.score if "score" in state._fields else None
-                m = min(self.discrepancy_points, state.x.shape[0])
-                key = jax.random.fold_in(jax.random.key(0x5D15C), int(step))
-                rec["ksd"] = float(_discrepancy(target, state.x, score, key, m, self.whitened))
+                rec["ksd"] = float(fig["ksd"])
             if self._trail is not None and tape is not None and len(tape):
                 self._trail.push(np.asarray(tape, dtype=float))
-                if self._trail.size >= 8:
-                    chains = self._trail.groups()
-                    with np.errstate(all="ignore"):
-                        rhat = np.asarray(split_rhat(chains), dtype=float)
-                        ess = np.asarray(bulk_ess(chains), dtype=float)
-                    rec["rhat"] = float(np.nanmax(rhat)) if np.any(np.isfinite(rhat)) else float("nan")
-                    rec["ess"] = float(np.nanmin(ess)) if np.any(np.isfinite(ess)) else float("nan")
+                if self._trail.size >= 8 and not defer_chains:
+                    rec.update(chain_figures([self._trail.groups()])[0])
         rec.update(summarise_stats(stats, reductions))
         return rec
+
+    def chains(self) -> np.ndarray | None:
+        """The taped particles' thinned trails as chains ``(chains, draws, d)``, once there
+        are enough draws for R-hat and ESS (else ``None``)."""
+        if self._trail is None or self._trail.size < 8:
+            return None
+        return self._trail.groups()
 
     def judge(self, history) -> Verdict:
         rec = history.last
@@ -302,9 +317,21 @@ class BareMonitor(Monitor):
     def open(self, target, stepper, state) -> None:
         self.tape_particles = 0
 
+    def measure(self, target, state, step: int) -> dict[str, Any]:
+        return {"n_nonfinite": jax.device_get(_count_nonfinite(state.x))}
+
+    def measure_batch(self, target, states, steps) -> list[dict[str, Any]]:
+        bad = jax.device_get(_count_nonfinite_batch(states.x))
+        return [{"n_nonfinite": bad[i]} for i in range(len(steps))]
+
+    def chains(self) -> np.ndarray | None:
+        return None
+
     def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
-             reductions: dict[str, str]) -> dict[str, Any]:
-        bad = int(jax.device_get(_count_nonfinite(state.x)))
+             reductions: dict[str, str], measured: dict[str, Any] | None = None,
+             defer_chains: bool = False) -> dict[str, Any]:
+        fig = self.measure(target, state, step) if measured is None else measured
+        bad = int(fig["n_nonfinite"])
         rec = {"step": int(step), "elapsed": float(elapsed), "n_nonfinite": bad, "flow_time": float(flow_time)}
         rec.update(summarise_stats(stats, reductions))
         return rec
@@ -317,13 +344,67 @@ class BareMonitor(Monitor):
         return {}
 
 
+def chain_figures(groups: list[np.ndarray]) -> list[dict[str, float]]:
+    """``rhat`` (largest rank-normalised split R-hat over coordinates) and ``ess`` (smallest
+    bulk ESS) for each of several sets of chains ``(chains, draws, d)``. Sets of the same
+    chains-and-draws shape are computed together, side by side along the coordinate axis
+    (R-hat and ESS are per coordinate), in one call: a sweep's members cost one computation."""
+    out: list[dict[str, float]] = [{} for _ in groups]
+    by_shape: dict[tuple[int, int], list[int]] = {}
+    for i, g in enumerate(groups):
+        by_shape.setdefault(g.shape[:2], []).append(i)
+    for members in by_shape.values():
+        joint = np.concatenate([groups[i] for i in members], axis=2)
+        with np.errstate(all="ignore"):
+            rhat = np.asarray(split_rhat(joint), dtype=float)
+            ess = np.asarray(bulk_ess(joint), dtype=float)
+        start = 0
+        for i in members:
+            d = groups[i].shape[2]
+            r, e = rhat[start:start + d], ess[start:start + d]
+            start += d
+            out[i] = {"rhat": float(np.nanmax(r)) if np.any(np.isfinite(r)) else float("nan"),
+                      "ess": float(np.nanmin(e)) if np.any(np.isfinite(e)) else float("nan")}
+    return out
+
+
 @jax.jit
 def _count_nonfinite(x):
     return jnp.sum(~jnp.all(jnp.isfinite(x), axis=1))
 
 
-@partial(jax.jit, static_argnames=("m", "whitened"))
-def _discrepancy(target, x, score, key, m, whitened):
+_count_nonfinite_batch = jax.jit(jax.vmap(_count_nonfinite))
+
+_ensemble_figures = jax.jit(_ensemble_figures_body)
+
+_DISCREPANCY_SALT = 0x5D15C  # the discrepancy's subset at step t is drawn with fold_in(key(salt), t)
+
+
+def _score_of(state):
+    """The score the stepper keeps at ``state.x`` (an optional field of the protocol), or None."""
+    return state.score if "score" in state._fields else None
+
+
+def _measure_body(target, x, score, step, m, whitened, discrepancy):
+    fig = _ensemble_figures_body(target, x)
+    if discrepancy:
+        key = jax.random.fold_in(jax.random.key(_DISCREPANCY_SALT), step)
+        fig["ksd"] = _discrepancy_body(target, x, score, key, m, whitened)
+    return fig
+
+
+_measure = jax.jit(_measure_body, static_argnames=("m", "whitened", "discrepancy"))
+
+
+@partial(jax.jit, static_argnames=("m", "whitened", "discrepancy"))
+def _measure_batch(target, xs, scores, steps, m, whitened, discrepancy):
+    def one(x, s, t):
+        return _measure_body(target, x, s, t, m, whitened, discrepancy)
+
+    return jax.vmap(one)(xs, scores, steps)
+
+
+def _discrepancy_body(target, x, score, key, m, whitened):
     n = x.shape[0]
     if m < n:
         idx = jax.random.choice(key, n, (m,), replace=False)

@@ -21,8 +21,8 @@ from typing import Any
 
 import numpy as np
 
-from ._history import History
 from ..model._labels import ROOT_NAME, element_labels
+from ._history import History
 
 __all__ = ["Result", "load"]
 

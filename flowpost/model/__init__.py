@@ -2,23 +2,26 @@
 their log-Jacobians, parameter labels)."""
 from __future__ import annotations
 
-from ._support import (
-    Real as Real,
-    Positive as Positive,
-    Interval as Interval,
-    Simplex as Simplex,
-    as_support as as_support,
-)
 from ._labels import (
     ROOT_NAME as ROOT_NAME,
     element_label as element_label,
     element_labels as element_labels,
     path_label as path_label,
 )
+from ._support import (
+    Interval as Interval,
+    Positive as Positive,
+    Real as Real,
+    Simplex as Simplex,
+    as_support as as_support,
+)
 from ._target import (
-    Target as Target,
     Layout as Layout,
+    Target as Target,
     as_target as as_target,
 )
 
-__all__ = ['ROOT_NAME', 'element_label', 'element_labels', 'path_label', 'Real', 'Positive', 'Interval', 'Simplex', 'as_support', 'Target', 'Layout', 'as_target']
+__all__ = [
+    "ROOT_NAME", "Interval", "Layout", "Positive", "Real", "Simplex", "Target", "as_support",
+    "as_target", "element_label", "element_labels", "path_label",
+]

@@ -10,12 +10,13 @@ alone). Unconstrained coordinates, which a simplex has one fewer of, are numbere
 """
 from __future__ import annotations
 
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 import jax
 import numpy as np
 
-__all__ = ["ROOT_NAME", "path_label", "element_label", "element_labels", "coordinate_labels"]
+__all__ = ["ROOT_NAME", "coordinate_labels", "element_label", "element_labels", "path_label"]
 
 ROOT_NAME = "theta"  # the name of a parameter given as one plain array
 

@@ -20,7 +20,9 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 
-__all__ = ["Real", "Positive", "Interval", "Simplex", "as_support"]
+from .._validate import fail, real
+
+__all__ = ["Interval", "Positive", "Real", "Simplex", "as_support"]
 
 
 @dataclass(frozen=True)
@@ -82,10 +84,13 @@ class Interval(Real):
     high: float = 1.0
 
     def __post_init__(self):
-        if not float(self.high) > float(self.low):
-            raise ValueError(
-                f"Interval: 'high' must exceed 'low'; got low={self.low}, high={self.high}"
-            )
+        finite = "a finite number (an unbounded side is a half-line: use fp.Positive(), or Real())"
+        low = real("Interval.low", self.low, expected=finite)
+        high = real("Interval.high", self.high, expected=finite)
+        if not high > low:
+            raise fail("Interval.high", f"a number greater than low = {low:g}", self.high)
+        object.__setattr__(self, "low", low)
+        object.__setattr__(self, "high", high)
 
     def forward(self, u, shape):
         return (self.low + (self.high - self.low) * jax.nn.sigmoid(u)).reshape(shape)
@@ -118,9 +123,7 @@ class Simplex(Real):
 
     def free_size(self, shape):
         if len(shape) != 1 or shape[0] < 2:
-            raise ValueError(
-                f"Simplex: a simplex parameter must have shape (K,) with K >= 2; got {shape}"
-            )
+            raise fail("Simplex", "a simplex parameter of shape (K,) with K >= 2", tuple(shape))
         return shape[0] - 1
 
     def forward(self, u, shape):
@@ -155,8 +158,6 @@ def as_support(spec) -> Real:
     if isinstance(spec, str) and spec in _BY_NAME:
         return _BY_NAME[spec]
     if isinstance(spec, tuple) and len(spec) == 2:
-        return Interval(float(spec[0]), float(spec[1]))
-    raise ValueError(
-        f"support: expected flowpost.Positive(), Interval(low, high), Simplex(), Real(), "
-        f"one of {sorted(_BY_NAME)} or a (low, high) pair; got {spec!r}"
-    )
+        return Interval(spec[0], spec[1])
+    raise fail("support", f"flowpost.Positive(), Interval(low, high), Simplex(), Real(), one of "
+               f"{sorted(_BY_NAME)} or a (low, high) pair", spec, TypeError if not isinstance(spec, str) else ValueError)

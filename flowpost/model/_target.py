@@ -16,8 +16,9 @@ supports and the parameter layout are static.
 """
 from __future__ import annotations
 
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Any, Callable, Mapping
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -26,7 +27,7 @@ import numpy as np
 from ._labels import ROOT_NAME, coordinate_labels, element_labels, path_label
 from ._support import Real, as_support
 
-__all__ = ["Target", "Layout", "as_target"]
+__all__ = ["Layout", "Target", "as_target"]
 
 @dataclass(frozen=True)
 class _Slot:
@@ -187,7 +188,7 @@ class Target:
         obj.data = children[0]
         return obj
 
-    def _replace_layout(self, layout: Layout) -> "Target":
+    def _replace_layout(self, layout: Layout) -> Target:
         obj = Target.__new__(Target)
         obj._terms, obj._named, obj._support = self._terms, self._named, self._support
         obj.data, obj.layout = self.data, layout
@@ -202,7 +203,7 @@ class Target:
     def support(self) -> dict:
         return dict(self._support)
 
-    def bind(self, init) -> tuple["Target", jax.Array]:
+    def bind(self, init) -> tuple[Target, jax.Array]:
         """Fix the parameter layout from ``init`` (pytree with leading axis N) and return the
         bound target and the unconstrained ``(N, d)`` starting ensemble.
 
@@ -282,7 +283,7 @@ class Target:
         ``"jacobian"`` when terms are named and some parameter is constrained."""
         names = tuple(k for k, _ in self._terms)
         if self._named and self._constrained():
-            names = names + ("jacobian",)
+            names = (*names, "jacobian")
         return names
 
     def _constrained(self) -> bool:

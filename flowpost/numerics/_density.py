@@ -45,7 +45,7 @@ from ._pairwise import DEFAULT_BLOCK, _check_block, map_row_blocks, pairwise_sqd
 Array = jax.Array
 ArrayLike = Any
 
-__all__ = ["log_kde", "grad_log_kde"]
+__all__ = ["grad_log_kde", "log_kde"]
 
 _HIGHEST = lax.Precision.HIGHEST
 

@@ -48,7 +48,8 @@ per problem.
 
 from __future__ import annotations
 
-from typing import Any, Callable, NamedTuple
+from collections.abc import Callable
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -57,7 +58,7 @@ import optax
 from .._pytree import pytree_dataclass, static
 from .._validate import callable_value, choice, fail, instance, integer, non_negative, positive
 
-__all__ = ["InnerSolver", "SolveReport", "minimise", "FIRST_ORDER_METHODS"]
+__all__ = ["FIRST_ORDER_METHODS", "InnerSolver", "SolveReport", "minimise"]
 
 PyTree = Any
 
@@ -135,7 +136,7 @@ class InnerSolver:
     def __post_init__(self) -> None:
         # Runs on user values only (JAX rebuilds the pytree without __init__);
         # numbers are normalised to Python float / int so equal configs are equal.
-        method = choice("method", self.method, ("lbfgs",) + tuple(FIRST_ORDER_METHODS))
+        method = choice("method", self.method, ("lbfgs", *FIRST_ORDER_METHODS))
         object.__setattr__(self, "method", method)
         object.__setattr__(self, "tol", non_negative("tol", self.tol))
         object.__setattr__(self, "max_iters", integer("max_iters", self.max_iters, minimum=0))

@@ -60,8 +60,8 @@ ArrayLike = Any
 
 __all__ = [
     "DEFAULT_MEDIAN_POINTS",
-    "RBF",
     "IMQ",
+    "RBF",
     "RadialKernel",
     "median_distance",
     "normal_reference_bandwidth",

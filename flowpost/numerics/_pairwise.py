@@ -44,8 +44,9 @@ floating dtype.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from functools import partial
-from typing import Any, Callable
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -59,11 +60,11 @@ ArrayLike = Any
 
 __all__ = [
     "DEFAULT_BLOCK",
-    "pairwise_sqdist",
-    "map_row_blocks",
-    "kernel_sums",
-    "random_batch_sums",
     "interaction_means",
+    "kernel_sums",
+    "map_row_blocks",
+    "pairwise_sqdist",
+    "random_batch_sums",
 ]
 
 #: Default number of destination rows processed at once by the blocked sums.
@@ -134,12 +135,12 @@ def map_row_blocks(fn: Callable[[Any], Any], rows: Any, *, block: int = DEFAULT_
     def split(a: Array) -> Array:
         if pad:
             a = jnp.pad(a, [(0, pad)] + [(0, 0)] * (a.ndim - 1), mode="edge")
-        return a.reshape((n_blocks, b) + a.shape[1:])
+        return a.reshape((n_blocks, b, *a.shape[1:]))
 
     out = lax.map(jax.checkpoint(fn), jax.tree.map(split, rows))
 
     def join(a: Array) -> Array:
-        return a.reshape((n_blocks * b,) + a.shape[2:])[:n]
+        return a.reshape((n_blocks * b, *a.shape[2:]))[:n]
 
     return jax.tree.map(join, out)
 
@@ -223,7 +224,7 @@ def _kernel_sums(kernel, x_src, values, x_dst, *, block, scale):
     xc = x_src - shift
     yc = x_dst - shift
     kv, grad = map_row_blocks(lambda yb: _sums_block(kernel, s, yb, xc, v), yc, block=block)
-    return kv.reshape((x_dst.shape[0],) + trailing), grad
+    return kv.reshape((x_dst.shape[0], *trailing)), grad
 
 
 def random_batch_sums(
@@ -307,7 +308,7 @@ def _random_batch_sums(kernel, x, values, key, batch, *, scale):
     size_p = jnp.concatenate(size_parts, axis=0)
 
     inverse = jnp.zeros((n,), dtype=perm.dtype).at[perm].set(jnp.arange(n, dtype=perm.dtype))
-    return kv_p[inverse].reshape((n,) + trailing), grad_p[inverse], size_p[inverse]
+    return kv_p[inverse].reshape((n, *trailing)), grad_p[inverse], size_p[inverse]
 
 
 def interaction_means(

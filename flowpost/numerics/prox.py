@@ -42,7 +42,8 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Any, Callable, Sequence
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -54,14 +55,14 @@ from .._validate import callable_value, fail, instance, non_negative, positive, 
 from ._inner import InnerSolver, SolveReport, minimise
 
 __all__ = [
-    "ProxTerm",
-    "L1Penalty",
-    "WeightedL1Penalty",
-    "NonNegative",
     "Box",
     "GroupL1Penalty",
-    "UserProx",
+    "L1Penalty",
+    "NonNegative",
+    "ProxTerm",
     "SmoothProx",
+    "UserProx",
+    "WeightedL1Penalty",
     "prox_by_solver",
 ]
 
@@ -411,7 +412,7 @@ class GroupL1Penalty(ProxTerm):
 
     def _group_norms(self, x):
         ids, n_groups = self.group_ids(x.shape[-1])
-        sq = jnp.zeros(x.shape[:-1] + (n_groups + 1,), x.dtype).at[..., ids].add(x * x)
+        sq = jnp.zeros((*x.shape[:-1], n_groups + 1), x.dtype).at[..., ids].add(x * x)
         return jnp.sqrt(sq), ids, n_groups
 
     def _map(self, v, h):
@@ -516,7 +517,7 @@ class SmoothProx(ProxTerm):
         return x
 
     def _value(self, x):
-        one = lambda u: jnp.asarray(self.g(u)).astype(u.dtype)  # noqa: E731
+        one = lambda u: jnp.asarray(self.g(u)).astype(u.dtype)
         return jax.vmap(one)(x) if x.ndim == 2 else one(x)
 
 

@@ -55,7 +55,8 @@ Source: "Proximal Markov chain Monte Carlo algorithms" (Statistics and Computing
 """
 from __future__ import annotations
 
-from typing import Any, Callable
+from collections.abc import Callable
+from typing import Any
 
 import jax
 

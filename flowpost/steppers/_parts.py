@@ -29,7 +29,8 @@ stochastic numerical methods for molecular sampling" (AMRX, 2013).
 """
 from __future__ import annotations
 
-from typing import Any, Callable, ClassVar, NamedTuple
+from collections.abc import Callable
+from typing import Any, ClassVar, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -42,8 +43,19 @@ from ._solver_defaults import check_solver, default_solver
 from .base import Stepper
 
 __all__ = [
-    "Part", "Explicit", "Proximal", "ExactMap", "HeatFlow", "Kick", "Drift", "Friction",
-    "PositionState", "MomentumState", "KickState", "ProximalState", "term_gradient",
+    "Drift",
+    "ExactMap",
+    "Explicit",
+    "Friction",
+    "HeatFlow",
+    "Kick",
+    "KickState",
+    "MomentumState",
+    "Part",
+    "PositionState",
+    "Proximal",
+    "ProximalState",
+    "term_gradient",
 ]
 
 _HIGHEST = jax.lax.Precision.HIGHEST

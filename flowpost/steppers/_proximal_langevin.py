@@ -47,7 +47,7 @@ from ..numerics.prox import ProxTerm, UserProx
 from ._parts import Explicit, HeatFlow, Part, PositionState, Proximal
 from ._split import Recipe, Split, compose
 
-__all__ = ["ProximalLangevin", "MoreauDrift"]
+__all__ = ["MoreauDrift", "ProximalLangevin"]
 
 
 def _as_prox(name: str, prox: Any) -> ProxTerm:

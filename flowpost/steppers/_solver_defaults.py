@@ -15,7 +15,7 @@ import jax.numpy as jnp
 from .._validate import fail
 from ..numerics import InnerSolver
 
-__all__ = ["default_solver", "check_solver"]
+__all__ = ["check_solver", "default_solver"]
 
 
 def default_solver(dtype, max_iters: int = 50) -> InnerSolver:

@@ -45,7 +45,8 @@ largest; over a window each stat reduces as the parts declare.
 """
 from __future__ import annotations
 
-from typing import Any, NamedTuple, Sequence
+from collections.abc import Sequence
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -55,7 +56,7 @@ from .._validate import choice, fail, positive
 from ._parts import Part
 from .base import Stepper, check_stepper
 
-__all__ = ["Split", "SplitState", "Recipe", "compose"]
+__all__ = ["Recipe", "Split", "SplitState", "compose"]
 
 
 class SplitState(NamedTuple):
@@ -135,7 +136,7 @@ class Split(Stepper):
         object.__setattr__(self, "parts", tuple(parts))
         choice("order", self.order, ("lie", "strang"))
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
-        self.reductions  # refuses parts that disagree on a stat's reduction
+        _ = self.reductions  # evaluated for its check: refuses parts that disagree on a stat's reduction
 
     # ----- declarations (from the parts) -------------------------------------------------
     @property
@@ -169,7 +170,7 @@ class Split(Stepper):
         if self.order == "lie" or k == 1:
             return tuple((i, 1.0) for i in range(k))
         head = tuple((i, 0.5) for i in range(k - 1))
-        return head + ((k - 1, 1.0),) + tuple(reversed(head))
+        return (*head, (k - 1, 1.0), *reversed(head))
 
     def _keeps_gradient(self) -> tuple[bool, ...]:
         """Per slot of the schedule: True when no other part moved the positions since this

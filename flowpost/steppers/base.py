@@ -86,8 +86,14 @@ if TYPE_CHECKING:  # pragma: no cover
     from ..engine._controllers import Controller
 
 __all__ = [
-    "Stepper", "ParticleState", "ScoredState", "check_stepper", "REDUCTIONS",
-    "declared_reductions", "positive_number", "check_stats",
+    "REDUCTIONS",
+    "ParticleState",
+    "ScoredState",
+    "Stepper",
+    "check_stats",
+    "check_stepper",
+    "declared_reductions",
+    "positive_number",
 ]
 
 REDUCTIONS = ("sum", "mean", "max")

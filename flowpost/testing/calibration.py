@@ -20,20 +20,22 @@ chi-square test from ``scipy.stats.chisquare``.
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from functools import partial
-from typing import Any, Callable
+from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 import scipy.stats
 
+from .._validate import integer
 from ..engine._driver import evolve
-from ..steppers.base import check_stepper
 from ..model._target import Target
+from ..steppers.base import check_stepper
 
-__all__ = ["calibrate", "CalibrationReport"]
+__all__ = ["CalibrationReport", "calibrate"]
 
 
 @partial(jax.jit, static_argnames=("steps", "batch"))
@@ -166,7 +168,10 @@ def calibrate(
         raise TypeError("prior_draw: expected a callable prior_draw(key) -> theta")
     if not callable(simulate):
         raise TypeError("simulate: expected a callable simulate(key, theta) -> data")
-    n_datasets, steps, bins = int(n_datasets), int(steps), int(bins)
+    n_datasets = integer("n_datasets", n_datasets, minimum=1)
+    steps = integer("steps", steps, minimum=0)
+    bins = integer("bins", bins, minimum=2)
+    batch = integer("batch", batch, minimum=1)
     if n_datasets < bins:
         raise ValueError(f"n_datasets: need at least as many datasets as bins ({bins}); got {n_datasets}")
     k_prior, k_data, k_run = jax.random.split(key, 3)

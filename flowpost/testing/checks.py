@@ -62,8 +62,9 @@ shortcut for the same region; giving both is an error):
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from typing import Any, Callable
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -75,18 +76,18 @@ from ..model._labels import element_label, path_label
 from .region import Region, default_key
 
 __all__ = [
-    "ScoreAgreement",
-    "score_agreement",
-    "assert_score_matches",
     "HealthReport",
-    "assert_scalar_output",
-    "assert_finite_on_region",
-    "assert_jit_matches_eager",
-    "assert_vmap_matches_loop",
+    "ScoreAgreement",
     "assert_deterministic",
     "assert_exchangeable_rows",
+    "assert_finite_on_region",
+    "assert_jit_matches_eager",
+    "assert_scalar_output",
+    "assert_score_matches",
+    "assert_vmap_matches_loop",
     "check_health",
     "points_near",
+    "score_agreement",
 ]
 
 LogDensity = Callable[..., Any]
@@ -477,7 +478,7 @@ def assert_jit_matches_eager(
             compiled = jax.jit(log_p)(point)
         else:
             compiled = jax.jit(log_p)(point, data)
-    except Exception as exc:  # noqa: BLE001 - any failure to compile is the finding
+    except Exception as exc:
         raise AssertionError(
             f"log_p fails under jax.jit: {type(exc).__name__}: {_first_line(exc)}"
         ) from exc
@@ -519,7 +520,7 @@ def _vmap_at(log_p, points: list, data, rtol) -> None:
             batched = jax.vmap(log_p)(batch)
         else:
             batched = jax.vmap(log_p, in_axes=(0, None))(batch, data)
-    except Exception as exc:  # noqa: BLE001
+    except Exception as exc:
         raise AssertionError(
             f"log_p fails under jax.vmap over a batch of {len(points)} points: "
             f"{type(exc).__name__}: {_first_line(exc)}"
@@ -682,7 +683,7 @@ def check_health(
             return None
         except AssertionError as exc:
             return str(exc)
-        except Exception as exc:  # noqa: BLE001 - errors of log_p are findings too
+        except Exception as exc:
             return f"raised {type(exc).__name__}: {_first_line(exc)}"
 
     results = {

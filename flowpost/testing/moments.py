@@ -27,15 +27,16 @@ with probability about 6e-5 (4) to 6e-7 (5) per compared quantity (two-sided nor
 """
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any
 
 import jax
 import numpy as np
 
 from .checks import _coordinates
 
-__all__ = ["MomentZScores", "moment_zscores", "assert_moments_match"]
+__all__ = ["MomentZScores", "assert_moments_match", "moment_zscores"]
 
 
 @dataclass(frozen=True)

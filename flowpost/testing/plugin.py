@@ -91,8 +91,9 @@ The objects behind the fixtures (:class:`ScoreCheck`, :class:`HealthCheck`,
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 import pytest
 
@@ -100,7 +101,12 @@ if TYPE_CHECKING:  # pragma: no cover - the region module is imported when a che
     from .region import Region
 
 __all__ = [
-    "Settings", "ScoreCheck", "HealthCheck", "CalibrationRun", "MomentCheck", "ReferenceFamilies",
+    "CalibrationRun",
+    "HealthCheck",
+    "MomentCheck",
+    "ReferenceFamilies",
+    "ScoreCheck",
+    "Settings",
     "describe_rank_shape",
 ]
 

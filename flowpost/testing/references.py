@@ -42,13 +42,13 @@ import scipy.stats
 from jax.scipy import stats as jstats
 
 __all__ = [
-    "ClosedFormModel",
-    "NormalKnownVariance",
-    "BetaBinomial",
-    "GammaPoisson",
-    "DirichletMultinomial",
-    "LinearRegressionKnownNoise",
     "CLOSED_FORM_MODELS",
+    "BetaBinomial",
+    "ClosedFormModel",
+    "DirichletMultinomial",
+    "GammaPoisson",
+    "LinearRegressionKnownNoise",
+    "NormalKnownVariance",
 ]
 
 
