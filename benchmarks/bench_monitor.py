@@ -5,6 +5,7 @@ particles, 1000 steps of Langevin in windows of 100). Target: ratio <= 1.05.
 
     python benchmarks/bench_monitor.py
 """
+
 import sys
 import time
 from pathlib import Path
@@ -20,11 +21,27 @@ N, STEPS, H = 4096, 1000, 1e-4
 
 
 def timed(target, x0, key, monitor_factory):
-    fp.run(target, fp.Langevin(step_size=H), x0, key=key, steps=STEPS, window=100, progress=False,
-           monitor=monitor_factory())  # compile
+    fp.run(
+        target,
+        fp.Langevin(step_size=H),
+        x0,
+        key=key,
+        steps=STEPS,
+        window=100,
+        progress=False,
+        monitor=monitor_factory(),
+    )  # compile
     t = time.perf_counter()
-    fp.run(target, fp.Langevin(step_size=H), x0, key=key, steps=STEPS, window=100, progress=False,
-           monitor=monitor_factory())
+    fp.run(
+        target,
+        fp.Langevin(step_size=H),
+        x0,
+        key=key,
+        steps=STEPS,
+        window=100,
+        progress=False,
+        monitor=monitor_factory(),
+    )
     return time.perf_counter() - t
 
 

@@ -6,6 +6,7 @@ Target: ratio <= 1.05. Prints the ratio and particle-gradients per second for bo
 
     python benchmarks/bench_spine.py
 """
+
 import sys
 import time
 from pathlib import Path

@@ -26,6 +26,7 @@ Run: ``python benchmarks/bench_stiff.py`` (about 15 minutes on two CPU cores);
 ``--quick`` for a smaller grid; ``--only ImplicitLangevin --h 3e-4 --time-budget 600`` for one
 stepper with a longer wall budget.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -104,8 +105,17 @@ def one_run(target, w, stepper, window, x0, eval_budget, time_budget, max_steps)
     fp.run(target, stepper, x0, key=key, steps=window, window=window, progress=False)
     mon = CovarianceWatch(w, LEVEL, eval_budget)
     t0 = time.perf_counter()
-    r = fp.run(target, stepper, x0, key=key, steps=max_steps, window=window, monitor=mon,
-               time_budget=time_budget, progress=False)
+    r = fp.run(
+        target,
+        stepper,
+        x0,
+        key=key,
+        steps=max_steps,
+        window=window,
+        monitor=mon,
+        time_budget=time_budget,
+        progress=False,
+    )
     wall = time.perf_counter() - t0
     recs = [rec for rec in r.history if "cov_err" in rec]
     last = recs[-1] if recs else {}
@@ -126,13 +136,12 @@ def one_run(target, w, stepper, window, x0, eval_budget, time_budget, max_steps)
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="smaller grid and budgets")
-    ap.add_argument("--eval-budget", type=float, default=30_000.0,
-                    help="score evaluations per particle per run")
+    ap.add_argument("--eval-budget", type=float, default=30_000.0, help="score evaluations per particle per run")
     ap.add_argument("--time-budget", type=float, default=120.0, help="wall seconds per run")
-    ap.add_argument("--only", default=None,
-                    help="run one stepper only (Langevin, MALA, ImplicitLangevin, JKO)")
-    ap.add_argument("--h", type=float, nargs="+", default=None,
-                    help="step sizes to try (with --only), replacing the default grid")
+    ap.add_argument("--only", default=None, help="run one stepper only (Langevin, MALA, ImplicitLangevin, JKO)")
+    ap.add_argument(
+        "--h", type=float, nargs="+", default=None, help="step sizes to try (with --only), replacing the default grid"
+    )
     args = ap.parse_args()
 
     _, _, w = make_problem()
@@ -155,12 +164,18 @@ def main():
             ap.error(f"--only: unknown stepper {args.only!r}")
 
     print(f"stiff Gaussian: d = {D}, condition number {COND:g}, N = {N} particles, start N(0, 4 I)")
-    print(f"error = ||W C W^T - I||_F / sqrt(d); exact-sample floor sqrt((d+1)/N) = "
-          f"{np.sqrt((D + 1) / N):.3f}; level {LEVEL}")
-    print(f"budgets per run: {args.eval_budget:g} score evaluations per particle, "
-          f"{args.time_budget:g} s wall, flow time {flow_time:g}")
-    head = (f"{'stepper':<17}{'h':>8}{'reached':>9}{'flow t':>9}{'steps':>8}{'evals':>10}"
-            f"{'wall s':>9}{'err':>8}{'capped':>8}  stop")
+    print(
+        f"error = ||W C W^T - I||_F / sqrt(d); exact-sample floor sqrt((d+1)/N) = "
+        f"{np.sqrt((D + 1) / N):.3f}; level {LEVEL}"
+    )
+    print(
+        f"budgets per run: {args.eval_budget:g} score evaluations per particle, "
+        f"{args.time_budget:g} s wall, flow time {flow_time:g}"
+    )
+    head = (
+        f"{'stepper':<17}{'h':>8}{'reached':>9}{'flow t':>9}{'steps':>8}{'evals':>10}"
+        f"{'wall s':>9}{'err':>8}{'capped':>8}  stop"
+    )
     print(head)
     print("-" * len(head))
     rows = []
@@ -173,9 +188,12 @@ def main():
             max_steps = int(np.ceil(flow_time / h / window)) * window
             res = one_run(target, w, stepper, window, x0, args.eval_budget, args.time_budget, max_steps)
             rows.append((name, h, res))
-            print(f"{name:<17}{h:>8.0e}{'yes' if res['reached'] else 'no':>9}{res['flow_time']:>9.3f}"
-                  f"{res['steps']:>8d}{res['evals']:>10.0f}{res['wall']:>9.1f}{res['err']:>8.3f}"
-                  f"{res['capped']:>8.0f}  {res['why']}", flush=True)
+            print(
+                f"{name:<17}{h:>8.0e}{'yes' if res['reached'] else 'no':>9}{res['flow_time']:>9.3f}"
+                f"{res['steps']:>8d}{res['evals']:>10.0f}{res['wall']:>9.1f}{res['err']:>8.3f}"
+                f"{res['capped']:>8.0f}  {res['why']}",
+                flush=True,
+            )
 
     print()
     print("cheapest run reaching the level, per stepper (score evaluations per particle, wall s):")

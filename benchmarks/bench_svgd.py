@@ -17,6 +17,7 @@ The update (both variants), with ``k(x, y) = exp(-|x - y|^2 / (2 b^2))``:
 
     phi_i = (1/N) sum_j [ k_ji s_j + (x_i - x_j) k_ji / b^2 ],     x_i <- x_i + h phi_i.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -75,7 +76,9 @@ def _library_loop(stepper, target, steps):
         def body(st, t):
             key = jax.random.fold_in(jax.random.key(1), t)
             return stepper.advance(target, st, key, jnp.asarray(stepper.step_size))[0], None
+
         return jax.lax.scan(body, state, jnp.arange(steps))[0]
+
     return loop
 
 
@@ -84,7 +87,9 @@ def _full_loop(target, steps, h, bandwidth):
     def loop(x):
         def body(x, t):
             return full_matrix_step(target, x, h, bandwidth), None
+
         return jax.lax.scan(body, x, jnp.arange(steps))[0]
+
     return loop
 
 
@@ -117,8 +122,12 @@ def time_comparison(n, d, steps, repeats, bandwidth):
     one_full = jax.jit(lambda x: full_matrix_step(target, x, h, bandwidth))(x)
     diff = float(jnp.max(jnp.abs(one_lib - one_full)))
     t_lib, t_full = (t / steps for t in _best_times([(lib, state), (full, x)], repeats))
-    return {"library_s_per_step": t_lib, "full_matrix_s_per_step": t_full,
-            "ratio": t_lib / t_full, "max_abs_difference_one_step": diff}
+    return {
+        "library_s_per_step": t_lib,
+        "full_matrix_s_per_step": t_full,
+        "ratio": t_lib / t_full,
+        "max_abs_difference_one_step": diff,
+    }
 
 
 _MEM_CHILD = """
@@ -162,21 +171,27 @@ def main(argv=None):
     p.add_argument("--mem-n", type=int, default=20_000)
     p.add_argument("--skip-memory", action="store_true")
     a = p.parse_args(argv)
-    print(f"jax {jax.__version__} on {jax.devices()[0].platform}; N = {a.n}, d = {a.d}, "
-          f"{a.steps} steps per timed loop, best of {a.repeats}")
+    print(
+        f"jax {jax.__version__} on {jax.devices()[0].platform}; N = {a.n}, d = {a.d}, "
+        f"{a.steps} steps per timed loop, best of {a.repeats}"
+    )
     for label, bw in (("median-heuristic RBF", None), ("fixed-bandwidth RBF", 1.0)):
         r = time_comparison(a.n, a.d, a.steps, a.repeats, bw)
-        print(f"[time] {label:22s} library {r['library_s_per_step'] * 1e3:9.2f} ms/step | "
-              f"full matrix {r['full_matrix_s_per_step'] * 1e3:9.2f} ms/step | ratio {r['ratio']:.2f} "
-              f"(target <= 1.3) | max |difference| after one step {r['max_abs_difference_one_step']:.1e}")
+        print(
+            f"[time] {label:22s} library {r['library_s_per_step'] * 1e3:9.2f} ms/step | "
+            f"full matrix {r['full_matrix_s_per_step'] * 1e3:9.2f} ms/step | ratio {r['ratio']:.2f} "
+            f"(target <= 1.3) | max |difference| after one step {r['max_abs_difference_one_step']:.1e}"
+        )
     if not a.skip_memory:
         for variant in ("library", "full"):
             m = memory(variant, a.mem_n, a.d)
             if "error" in m:
                 print(f"[memory] {variant:8s} N = {a.mem_n}, d = {a.d}: failed ({m['error']})")
             else:
-                print(f"[memory] {variant:8s} N = {a.mem_n}, d = {a.d}: peak RSS growth over one step "
-                      f"{m['growth_mib']:8.0f} MiB (peak {m['peak_mib']:.0f} MiB)")
+                print(
+                    f"[memory] {variant:8s} N = {a.mem_n}, d = {a.d}: peak RSS growth over one step "
+                    f"{m['growth_mib']:8.0f} MiB (peak {m['peak_mib']:.0f} MiB)"
+                )
 
 
 if __name__ == "__main__":

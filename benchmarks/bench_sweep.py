@@ -20,6 +20,7 @@ Two settings:
 
     python benchmarks/bench_sweep.py
 """
+
 import sys
 import time
 from pathlib import Path
@@ -42,8 +43,9 @@ def _target():
     def log_p(theta, data):  # a fresh closure: a new target structure, compiled afresh
         return cooling_log_p(theta, data)
 
-    return fp.Target(log_p, data=(jnp.asarray(t), jnp.asarray(temp)),
-                     support={"k": fp.Positive(), "sigma": fp.Positive()})
+    return fp.Target(
+        log_p, data=(jnp.asarray(t), jnp.asarray(temp)), support={"k": fp.Positive(), "sigma": fp.Positive()}
+    )
 
 
 def _init(n):
@@ -73,8 +75,10 @@ def main():
         seq = min(sequential(n, steps) for _ in range(2))
         bat = min(batched(n, steps) for _ in range(2))
         goal = "  (target <= 0.5)" if name == "pilot" else "  (no target: compute-bound steps)"
-        print(f"[{name}: N = {n}, {steps} steps] ten sequential fp.run: {seq:.2f} s; one fp.sweep: {bat:.2f} s; "
-              f"ratio batched / sequential = {bat / seq:.3f}{goal}")
+        print(
+            f"[{name}: N = {n}, {steps} steps] ten sequential fp.run: {seq:.2f} s; one fp.sweep: {bat:.2f} s; "
+            f"ratio batched / sequential = {bat / seq:.3f}{goal}"
+        )
 
 
 if __name__ == "__main__":

@@ -3,6 +3,7 @@
 Data: scikit-learn's copy of the UCI Wisconsin diagnostic breast-cancer set (569 rows,
 30 features), standardised, with an intercept column; prior N(0, 5^2) on every weight.
 """
+
 import jax.numpy as jnp
 import jax.scipy.stats as jst
 import numpy as np

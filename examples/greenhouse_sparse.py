@@ -19,6 +19,7 @@ the explicit step well inside its stability limit.
 
 Run: ``python examples/greenhouse_sparse.py`` (a few seconds).
 """
+
 import time
 
 import jax
@@ -31,11 +32,26 @@ from flowpost.numerics.prox import L1Penalty
 from flowpost.steppers import ProximalLangevin
 
 SENSORS = [
-    "soil_moisture_bed_a", "soil_moisture_bed_b", "air_temp_north", "air_temp_south",
-    "mist_pump_minutes", "roof_vent_opening", "outdoor_dewpoint", "leaf_wetness_pad",
-    "co2_ppm", "par_light", "heating_pipe_temp", "door_open_minutes",
-    "fan_speed", "shade_screen_pos", "irrigation_litres", "substrate_ec",
-    "outdoor_wind", "outdoor_temp", "glass_temp", "drip_tray_level",
+    "soil_moisture_bed_a",
+    "soil_moisture_bed_b",
+    "air_temp_north",
+    "air_temp_south",
+    "mist_pump_minutes",
+    "roof_vent_opening",
+    "outdoor_dewpoint",
+    "leaf_wetness_pad",
+    "co2_ppm",
+    "par_light",
+    "heating_pipe_temp",
+    "door_open_minutes",
+    "fan_speed",
+    "shade_screen_pos",
+    "irrigation_litres",
+    "substrate_ec",
+    "outdoor_wind",
+    "outdoor_temp",
+    "glass_temp",
+    "drip_tray_level",
 ]
 SIGMA, RATE = 1.0, 1.5
 
@@ -78,13 +94,16 @@ def main():
     lo, hi = np.quantile(beta, [0.05, 0.95], axis=0)
     p_pos = np.mean(beta > 0, axis=0)
     away = (lo > 0) | (hi < 0)
-    print(f"proximal Langevin: h = {h:.2e}, smoothing = {lam:.2e}, {result.steps} steps, "
-          f"{n_particles} particles, {elapsed:.1f} s ({result.status})")
+    print(
+        f"proximal Langevin: h = {h:.2e}, smoothing = {lam:.2e}, {result.steps} steps, "
+        f"{n_particles} particles, {elapsed:.1f} s ({result.status})"
+    )
     print(f"{'sensor':22s} {'mean':>7s} {'5%':>7s} {'95%':>7s} {'P(>0)':>6s}  {'truth':>6s}")
     for j, name in enumerate(SENSORS):
         flag = "  <- away from zero" if away[j] else ""
-        print(f"{name:22s} {beta[:, j].mean():7.2f} {lo[j]:7.2f} {hi[j]:7.2f} {p_pos[j]:6.2f}  "
-              f"{beta_true[j]:6.2f}{flag}")
+        print(
+            f"{name:22s} {beta[:, j].mean():7.2f} {lo[j]:7.2f} {hi[j]:7.2f} {p_pos[j]:6.2f}  {beta_true[j]:6.2f}{flag}"
+        )
     found = [SENSORS[j] for j in np.flatnonzero(away)]
     print("sensors with posterior mass away from zero (90% interval excludes 0):", ", ".join(found))
 

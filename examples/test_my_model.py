@@ -32,6 +32,7 @@ fail tells you nothing.
 
 Run: ``python -m pytest examples/test_my_model.py -q`` (about half a minute on two cores).
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -40,13 +41,13 @@ import pytest
 import flowpost as fp
 from flowpost.testing import Region
 
-PRIOR_MU_MEAN, PRIOR_MU_SD = 6.0, 2.0          # hours
+PRIOR_MU_MEAN, PRIOR_MU_SD = 6.0, 2.0  # hours
 PRIOR_SIGMA_SHAPE, PRIOR_SIGMA_RATE = 9.0, 12.0  # Gamma(shape, rate) on sigma, in hours
 N_MORNINGS = 12
 
 # twelve mornings of the bakery's notebook: hours until the starter doubled
 DATA = {"hours": jnp.array([5.9, 6.4, 5.2, 6.8, 6.1, 5.5, 7.0, 6.3, 5.8, 6.6, 6.0, 5.4])}
-TYPICAL = {"mu": 6.0, "sigma": 0.75}          # a plausible point, to centre the checks on
+TYPICAL = {"mu": 6.0, "sigma": 0.75}  # a plausible point, to centre the checks on
 NEAR_TYPICAL = Region.near(TYPICAL, scale=0.1)  # where to look: written once, used by every check
 SUPPORT = {"sigma": fp.Positive()}
 
@@ -101,10 +102,16 @@ def _log_p_with_wrong_gradient(theta, data):
     """The same density, its likelihood hand-written with a custom derivative that is wrong."""
     mu, sigma = theta["mu"], theta["sigma"]
     y = data["hours"]
-    loglik = jnp.sum(-0.5 * ((y - mu) / sigma) ** 2) - y.shape[0] * _log_of_scale(sigma) \
+    loglik = (
+        jnp.sum(-0.5 * ((y - mu) / sigma) ** 2)
+        - y.shape[0] * _log_of_scale(sigma)
         - 0.5 * y.shape[0] * jnp.log(2 * jnp.pi)
-    return (jst.norm.logpdf(mu, PRIOR_MU_MEAN, PRIOR_MU_SD)
-            + jst.gamma.logpdf(sigma, PRIOR_SIGMA_SHAPE, scale=1.0 / PRIOR_SIGMA_RATE) + loglik)
+    )
+    return (
+        jst.norm.logpdf(mu, PRIOR_MU_MEAN, PRIOR_MU_SD)
+        + jst.gamma.logpdf(sigma, PRIOR_SIGMA_SHAPE, scale=1.0 / PRIOR_SIGMA_RATE)
+        + loglik
+    )
 
 
 def test_planted_wrong_gradient_is_caught(fp_score_check):
@@ -125,8 +132,7 @@ def test_planted_row_bug_is_caught(fp_health_check):
         # planted bug: the first row was taken for a header and dropped
         return log_p(theta, {"hours": data["hours"][1:]})
 
-    report = fp_health_check(log_p_skipping_first_morning, NEAR_TYPICAL, data=DATA,
-                             exchangeable=True, check=False)
+    report = fp_health_check(log_p_skipping_first_morning, NEAR_TYPICAL, data=DATA, exchangeable=True, check=False)
     assert list(report.failures) == ["exchangeable"]
     assert "data rows are permuted" in report.failures["exchangeable"]
 
@@ -145,8 +151,9 @@ def test_simulation_based_calibration(fp_sbc):
     # at most 7% (1% at the typical sigma^2 / 12 = 0.047), far below what 100 datasets can
     # resolve. 1500 steps (flow time 1.5) are over 8 relaxation times of the slowest
     # direction (v <= 0.18 for 99% of prior draws).
-    report = fp_sbc(log_p, prior_draw, simulate, fp.Langevin(step_size=1e-3),
-                    fp_sbc.tile(TYPICAL), support=SUPPORT, steps=1500)
+    report = fp_sbc(
+        log_p, prior_draw, simulate, fp.Langevin(step_size=1e-3), fp_sbc.tile(TYPICAL), support=SUPPORT, steps=1500
+    )
     assert report.names == ["mu", "sigma"]
     assert report.counts.sum(axis=1).tolist() == [fp_sbc.n_datasets] * 2
 
@@ -162,14 +169,21 @@ def test_known_spread_matches_closed_form(fp_moments, fp_reference_families, fp_
         return log_p({"mu": theta["mu"], "sigma": sigma}, data)
 
     reference = fp_reference_families.NormalKnownVariance(
-        prior_mean=PRIOR_MU_MEAN, prior_sd=PRIOR_MU_SD, noise_sd=sigma)
+        prior_mean=PRIOR_MU_MEAN, prior_sd=PRIOR_MU_SD, noise_sd=sigma
+    )
 
     # Posterior variance v = 1 / (1/4 + 12/0.5625) = 0.046. Unadjusted Langevin with
     # h = 5e-4 inflates it by h / (2 v) = 0.5%, a quarter of the standard error of a variance
     # from N = 4000 independent particles (sqrt(2 / N) = 2.2%); its stationary mean is exact on
     # a Gaussian target. 1000 steps (time 0.5) are 11 relaxation times v.
-    result = fp.run(fp.Target(log_p_known_spread, data=DATA), fp.Langevin(step_size=5e-4),
-                    {"mu": jnp.full(4000, PRIOR_MU_MEAN)}, key=fp_key, steps=1000, progress=False)
+    result = fp.run(
+        fp.Target(log_p_known_spread, data=DATA),
+        fp.Langevin(step_size=5e-4),
+        {"mu": jnp.full(4000, PRIOR_MU_MEAN)},
+        key=fp_key,
+        steps=1000,
+        progress=False,
+    )
     assert result.status == "done"
     # mean and variance within --flowpost-moment-z (default 4.5) Monte-Carlo standard errors;
     # Langevin particles do not interact, so the effective sample size is N.

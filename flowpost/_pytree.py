@@ -9,12 +9,21 @@ recompiles; changing a static field does.
 JAX rebuilds such an object from traced leaves without calling ``__init__``, so the checks in
 ``__post_init__`` run on the user's values only, never on tracers.
 """
+
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, TypeVar
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import jax
+
+if TYPE_CHECKING:  # typing.dataclass_transform is 3.11+; the checker reads typing_extensions' stub
+    from typing_extensions import dataclass_transform
+else:
+
+    def dataclass_transform(**_: Any):
+        return lambda f: f
+
 
 __all__ = ["leaf_names", "pytree_dataclass", "static", "static_names", "unchecked"]
 
@@ -24,7 +33,11 @@ _STATIC = "flowpost_static"
 
 
 def static(default: Any = dataclasses.MISSING, **kwargs: Any) -> Any:
-    """A dataclass field that is part of the pytree's static structure."""
+    """A dataclass field that is part of the pytree's static structure.
+
+    Pass the default by keyword (``static(default=512)``): type checkers read
+    :func:`pytree_dataclass` as a dataclass transform whose field specifiers are
+    ``dataclasses.field`` and this function, and see a default only when it is named."""
     meta = dict(kwargs.pop("metadata", {}) or {})
     meta[_STATIC] = True
     if default is dataclasses.MISSING:
@@ -42,6 +55,7 @@ def static_names(cls: type) -> tuple[str, ...]:
     return tuple(f.name for f in dataclasses.fields(cls) if f.metadata.get(_STATIC))
 
 
+@dataclass_transform(frozen_default=True, field_specifiers=(dataclasses.field, static))
 def pytree_dataclass(cls: type[T]) -> type[T]:
     """Make ``cls`` a frozen dataclass and register it as a JAX pytree (module docstring)."""
     if "__dataclass_fields__" not in cls.__dict__:

@@ -10,6 +10,7 @@ Numbers may be Python numbers, NumPy scalars or concrete 0-d NumPy / JAX arrays;
 back as Python ``float`` / ``int``. The checks run when an object is built by the user, never
 when JAX rebuilds a pytree from traced leaves.
 """
+
 from __future__ import annotations
 
 import math
@@ -71,8 +72,16 @@ def _as_float(name: str, value: Any, expected: str) -> float:
     raise fail(name, expected, value, TypeError)
 
 
-def real(name: str, value: Any, *, low: float | None = None, high: float | None = None,
-         low_open: bool = False, high_open: bool = False, expected: str | None = None) -> float:
+def real(
+    name: str,
+    value: Any,
+    *,
+    low: float | None = None,
+    high: float | None = None,
+    low_open: bool = False,
+    high_open: bool = False,
+    expected: str | None = None,
+) -> float:
     """A finite real number in ``[low, high]`` (ends open when asked), as ``float``."""
     if expected is None:
         lo = "" if low is None else (f"> {low:g}" if low_open else f">= {low:g}")
@@ -101,8 +110,9 @@ def non_negative(name: str, value: Any) -> float:
 
 def open_unit(name: str, value: Any) -> float:
     """A number strictly between 0 and 1."""
-    return real(name, value, low=0.0, high=1.0, low_open=True, high_open=True,
-                expected="a number strictly between 0 and 1")
+    return real(
+        name, value, low=0.0, high=1.0, low_open=True, high_open=True, expected="a number strictly between 0 and 1"
+    )
 
 
 def integer(name: str, value: Any, *, minimum: int | None = None, maximum: int | None = None) -> int:

@@ -15,6 +15,7 @@ with weakly informative priors:
 The log itself is generated here with a fixed seed (true k = 0.42 / h, T_room = 24 C,
 sigma = 6 C), so the demo needs no files.
 """
+
 from __future__ import annotations
 
 import os
@@ -29,7 +30,7 @@ T0 = 1000.0
 TRUE = {"k": 0.42, "room": 24.0, "sigma": 6.0}
 
 
-def kiln_log(seed: int = 2024, hours: float = 8.0, every_minutes: float = 20.0):
+def kiln_log(seed: int = 2024, hours: float = 8.0, every_minutes: float = 20.0) -> tuple[np.ndarray, np.ndarray]:
     """Generated temperature log: times (h) and readings (C)."""
     rng = np.random.default_rng(seed)
     t = np.arange(every_minutes / 60, hours + 1e-9, every_minutes / 60)
@@ -37,15 +38,19 @@ def kiln_log(seed: int = 2024, hours: float = 8.0, every_minutes: float = 20.0):
     return t.astype(np.float32), (temp + rng.normal(0, TRUE["sigma"], t.shape)).astype(np.float32)
 
 
-def cooling_log_p(theta, data):
+def cooling_log_p(theta: dict[str, jax.Array], data: tuple[jax.Array, jax.Array]) -> jax.Array:
     """Log posterior of the cooling model (up to a constant)."""
     t, temp = data
     k, room, sigma = theta["k"], theta["room"], theta["sigma"]
     mean = room + (T0 - room) * jnp.exp(-k * t)
     log_lik = jnp.sum(jst.norm.logpdf(temp, mean, sigma))
     # log-normal prior on k written as a normal on log k plus the density's 1/k factor
-    log_prior = (jst.norm.logpdf(jnp.log(k), jnp.log(0.3), 1.0) - jnp.log(k)
-                 + jst.norm.logpdf(room, 20.0, 15.0) + jst.gamma.logpdf(sigma, 2.0, scale=5.0))
+    log_prior = (
+        jst.norm.logpdf(jnp.log(k), jnp.log(0.3), 1.0)
+        - jnp.log(k)
+        + jst.norm.logpdf(room, 20.0, 15.0)
+        + jst.gamma.logpdf(sigma, 2.0, scale=5.0)
+    )
     return log_lik + log_prior
 
 
@@ -55,17 +60,20 @@ def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     out_png = argv[0] if argv else "kiln_fit.png"
     t, temp = kiln_log()
-    target = fp.Target(cooling_log_p, data=(jnp.asarray(t), jnp.asarray(temp)),
-                       support={"k": fp.Positive(), "sigma": fp.Positive()})
+    target = fp.Target(
+        cooling_log_p, data=(jnp.asarray(t), jnp.asarray(temp)), support={"k": fp.Positive(), "sigma": fp.Positive()}
+    )
     n = 400
     # start at the prior's centre with a small jitter: the ensemble-preconditioned flow needs
     # spread in every direction to move (a constant start would never leave it), and grows
     # its spread to the posterior's by itself; a start much wider than the posterior would
     # make its first steps too large in the narrow directions
     kk, kr, ks = jax.random.split(jax.random.key(1), 3)
-    init = {"k": 0.3 * jnp.exp(1e-3 * jax.random.normal(kk, (n,))),
-            "room": 20.0 + 1e-2 * jax.random.normal(kr, (n,)),
-            "sigma": 10.0 * jnp.exp(1e-3 * jax.random.normal(ks, (n,)))}
+    init = {
+        "k": 0.3 * jnp.exp(1e-3 * jax.random.normal(kk, (n,))),
+        "room": 20.0 + 1e-2 * jax.random.normal(kr, (n,)),
+        "sigma": 10.0 * jnp.exp(1e-3 * jax.random.normal(ks, (n,))),
+    }
     # affine-invariant ensemble Langevin: the three parameters live on very different scales
     # (k is pinned to about 1%, the room temperature only to a few degrees)
     stepper = fp.EnsembleLangevin(step_size=0.05)
@@ -75,8 +83,9 @@ def main(argv: list[str] | None = None) -> int:
     print(result.summary())
     print("\nMonitor trace (one row per window of 250 steps):")
     recorded = result.history.keys()  # a list of column names (iterating a History yields its rows)
-    names = [k for k in ("step", "mean_logp", "centre_drift", "spread_drift", "ksd", "accept", "grad_evals")
-             if k in recorded]
+    names = [
+        k for k in ("step", "mean_logp", "centre_drift", "spread_drift", "ksd", "accept", "grad_evals") if k in recorded
+    ]
     print(result.history.table(names))
     print(f"\nTrue values used to generate the log: k = {TRUE['k']}, room = {TRUE['room']}, sigma = {TRUE['sigma']}")
     _plot(result, t, temp, out_png)
@@ -95,7 +104,8 @@ def _plot(result, t, temp, path):
     p = result.particles
     grid = np.linspace(0, t[-1], 200)
     curves = np.asarray(p["room"])[:, None] + (T0 - np.asarray(p["room"])[:, None]) * np.exp(
-        -np.asarray(p["k"])[:, None] * grid)
+        -np.asarray(p["k"])[:, None] * grid
+    )
     lo, mid, hi = np.quantile(curves, [0.05, 0.5, 0.95], axis=0)
     fig, ax = plt.subplots(figsize=(6, 4))
     ax.fill_between(grid, lo, hi, alpha=0.3, label="90% band of the fitted curve")

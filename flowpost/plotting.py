@@ -4,9 +4,17 @@
 log-density, kernel Stein discrepancy on a log scale, drift, R-hat when recorded),
 marginal histograms of chosen parameters, and a pairwise scatter of two of them.
 """
+
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+
+if TYPE_CHECKING:  # pragma: no cover - matplotlib is optional
+    from matplotlib.figure import Figure
+
+    from .engine._result import Result
 
 __all__ = ["run_figure"]
 
@@ -19,7 +27,7 @@ def _plt():
     return plt
 
 
-def run_figure(result, params: list[str] | None = None, pair: tuple[str, str] | None = None):
+def run_figure(result: Result, params: list[str] | None = None, pair: tuple[str, str] | None = None) -> Figure:
     """Figure of a :class:`~flowpost.Result`: monitor curves, marginals, one pairwise scatter.
 
     Parameters
@@ -48,9 +56,16 @@ def run_figure(result, params: list[str] | None = None, pair: tuple[str, str] | 
 
     hist = result.history
     rows = [r for r in hist if "event" not in r]
-    curves = [(k, lab) for k, lab in (("mean_logp", "mean log-density"), ("ksd", "kernel Stein discrepancy"),
-                                      ("centre_drift", "drift of the mean per unit time"), ("rhat", "R-hat"))
-              if any(k in r for r in rows)]
+    curves = [
+        (k, lab)
+        for k, lab in (
+            ("mean_logp", "mean log-density"),
+            ("ksd", "kernel Stein discrepancy"),
+            ("centre_drift", "drift of the mean per unit time"),
+            ("rhat", "R-hat"),
+        )
+        if any(k in r for r in rows)
+    ]
     ncol = max(len(curves), len(params) + (1 if pair else 0), 1)
     fig, axes = plt.subplots(2, ncol, figsize=(3.2 * ncol, 6), squeeze=False)
     steps = np.array([r["step"] for r in rows])
@@ -64,7 +79,7 @@ def run_figure(result, params: list[str] | None = None, pair: tuple[str, str] | 
     for ev in (r for r in hist if r.get("event") == "rollback"):
         for ax in axes[0][: len(curves)]:
             ax.axvline(ev["step"], color="red", lw=0.8, ls="--")
-    for ax in axes[0][len(curves):]:
+    for ax in axes[0][len(curves) :]:
         ax.axis("off")
     col = 0
     for p in params:

@@ -9,6 +9,7 @@ starting value; the ensemble mean is within 0.4 of the target's in each coordina
 Monte-Carlo standard errors of sd/sqrt(N) = 0.0625, leaving room for each stepper's own
 bias, e.g. ULA's O(h)).
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -62,9 +63,17 @@ def test_the_list_covers_every_library_stepper():
 
 #: What each library stepper must declare: deterministic flows get no R-hat / ESS.
 EXPECTED_STOCHASTIC = {
-    "Langevin": True, "MALA": True, "SVGD": False, "BlobFlow": False, "EnsembleLangevin": True,
-    "ImplicitLangevin": True, "JKO": False, "ForwardBackward": False, "ProximalLangevin": True,
-    "KineticLangevin": True, "Split": True,
+    "Langevin": True,
+    "MALA": True,
+    "SVGD": False,
+    "BlobFlow": False,
+    "EnsembleLangevin": True,
+    "ImplicitLangevin": True,
+    "JKO": False,
+    "ForwardBackward": False,
+    "ProximalLangevin": True,
+    "KineticLangevin": True,
+    "Split": True,
 }
 
 

@@ -25,6 +25,7 @@ from flowpost.numerics import IMQ, RBF
 # independent reference: Stein kernel by automatic differentiation
 # --------------------------------------------------------------------------
 
+
 def imq_value(c: float, b: float):
     """(c^2 + |x - y|^2)^b, written here independently of flowpost.kernels."""
     return lambda x, y: (c * c + jnp.sum((x - y) ** 2)) ** b
@@ -42,12 +43,7 @@ def autodiff_stein_kernel(k):
     gxy = jax.jacfwd(gx, argnums=1)
 
     def kp(x, y, sx, sy):
-        return (
-            jnp.dot(sx, sy) * k(x, y)
-            + jnp.dot(sx, gy(x, y))
-            + jnp.dot(sy, gx(x, y))
-            + jnp.trace(gxy(x, y))
-        )
+        return jnp.dot(sx, sy) * k(x, y) + jnp.dot(sx, gy(x, y)) + jnp.dot(sy, gx(x, y)) + jnp.trace(gxy(x, y))
 
     return kp
 

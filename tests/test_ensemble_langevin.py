@@ -4,6 +4,7 @@ Source of the properties checked: "Affine invariant interacting Langevin dynamic
 Bayesian inference" (SIAM J. Appl. Dyn. Syst., 2020): the dynamics are affine invariant, so
 their speed does not depend on the conditioning of the target.
 """
+
 from functools import partial
 
 import jax
@@ -33,10 +34,10 @@ def test_affine_equivariance_exact():
         moved = {"A": a, "b": b}
         x0 = jax.random.normal(jax.random.key(0), (300, 2), dtype=jnp.float64)
         stepper = EnsembleLangevin(step_size=0.05, block=128)
-        r1 = fp.run(fp.Target(_banana, data=ident), stepper, x0, key=jax.random.key(5), steps=100,
-                    progress=False)
-        r2 = fp.run(fp.Target(_banana, data=moved), stepper, x0 @ a.T + b, key=jax.random.key(5),
-                    steps=100, progress=False)
+        r1 = fp.run(fp.Target(_banana, data=ident), stepper, x0, key=jax.random.key(5), steps=100, progress=False)
+        r2 = fp.run(
+            fp.Target(_banana, data=moved), stepper, x0 @ a.T + b, key=jax.random.key(5), steps=100, progress=False
+        )
         x, y = np.asarray(r1.unconstrained), np.asarray(r2.unconstrained)
         assert x.dtype == np.float64
         expected = x @ np.asarray(a).T + np.asarray(b)
@@ -80,14 +81,21 @@ def _steps_to_reach(cond, seed, n=500, steps=150, tol=0.3):
     t = np.deg2rad(30.0)
     rot = np.array([[np.cos(t), -np.sin(t)], [np.sin(t), np.cos(t)]])
     root = rot @ np.diag([1.0, 1.0 / np.sqrt(cond)])  # Sigma = root root^T
-    data = {"mean": jnp.asarray([1.0, -1.0], jnp.float32),
-            "sigma": jnp.asarray(root @ root.T, jnp.float32)}
+    data = {"mean": jnp.asarray([1.0, -1.0], jnp.float32), "sigma": jnp.asarray(root @ root.T, jnp.float32)}
     z0 = jax.random.normal(jax.random.key(seed), (n, 2))
     x0 = data["mean"] + (3.0 * z0 + jnp.array([2.0, -2.0])) @ jnp.asarray(root, jnp.float32).T
     target, x0 = fp.Target(_gaussian_log_p, data=data).bind(x0)
-    err = np.asarray(_trajectory(_STEPPER, target, x0, jax.random.key(100 + seed),
-                                 jnp.asarray(np.linalg.inv(root), jnp.float32),
-                                 jnp.asarray(_STEPPER.step_size, jnp.float32), steps))
+    err = np.asarray(
+        _trajectory(
+            _STEPPER,
+            target,
+            x0,
+            jax.random.key(100 + seed),
+            jnp.asarray(np.linalg.inv(root), jnp.float32),
+            jnp.asarray(_STEPPER.step_size, jnp.float32),
+            steps,
+        )
+    )
     below = np.nonzero(err < tol)[0]
     assert below.size, f"never reached the tolerance; final error {err[-1]:.3g}"
     return int(below[0]) + 1, err
@@ -128,8 +136,9 @@ def test_unpreconditioned_langevin_is_slow_on_ill_conditioned_target():
 
     x0 = 3.0 * jax.random.normal(jax.random.key(2), (1000, 2)) @ jnp.asarray(root, jnp.float32).T
     r = fp.run(log_p, fp.Langevin(step_size=1e-4), x0, key=jax.random.key(3), steps=150, progress=False)
-    err = _whitened_cov_error(jnp.asarray(r.unconstrained), jnp.asarray(np.linalg.inv(root), jnp.float32),
-                              jnp.array([1.0, -1.0]))
+    err = _whitened_cov_error(
+        jnp.asarray(r.unconstrained), jnp.asarray(np.linalg.inv(root), jnp.float32), jnp.array([1.0, -1.0])
+    )
     assert float(err) > 3.0
 
 
@@ -183,7 +192,9 @@ def test_finite_n_correction_keeps_product_measure_invariant():
         def one(x0, key):
             def body(st, t):
                 return stepper.advance(target, st, jax.random.fold_in(key, t), jnp.asarray(h, x0.dtype))[0], None
+
             return jax.lax.scan(body, stepper.start(target, x0, key), jnp.arange(steps))[0].x
+
         return jax.vmap(one)(x0s, keys)
 
     x0s = jax.random.normal(jax.random.key(0), (m, n, 1))

@@ -8,6 +8,7 @@ unless a test says otherwise. The JKO stepper is deterministic: its checks use a
 All Gaussian targets share one module-level log-density with the mean and standard deviation as
 data, so the compiled window of a stepper is reused across tests (the data are pytree leaves).
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -44,13 +45,13 @@ def ar1_variance(h, s2):
 
 def run_il(target, stepper=IL, key=3):
     x0 = jax.random.normal(jax.random.key(1), (IL_N, 2))
-    return fp.run(target, stepper, x0, key=jax.random.key(key), steps=IL_STEPS,
-                  window=IL_WINDOW, progress=False)
+    return fp.run(target, stepper, x0, key=jax.random.key(key), steps=IL_STEPS, window=IL_WINDOW, progress=False)
 
 
 # --------------------------------------------------------------------------------------------
 # ImplicitLangevin
 # --------------------------------------------------------------------------------------------
+
 
 def test_implicit_langevin_ar1_variance_small_and_large_step():
     """On N(0, s2) the proximal map of the quadratic U(y) = y^2 / (2 s2) is
@@ -99,6 +100,7 @@ def test_implicit_langevin_closed_form_prox():
 # --------------------------------------------------------------------------------------------
 # JKO on a 1-D Gaussian: mean exactly, standard deviation up to the kernel-density bias
 # --------------------------------------------------------------------------------------------
+
 
 def jko_gaussian_std(s_k, s2, h, k=0.0):
     """One JKO step of N(m, s2) restricted to Gaussians N(m', s^2), from N(m_k, s_k^2).
@@ -157,8 +159,9 @@ def test_jko_gaussian_mean_exact_and_std_converges_with_n():
         x0 = (3.0 + 1.5 * sp_norm.ppf((np.arange(n) + 0.5) / n))[:, None]
         with jax.enable_x64(True):
             target = gauss([m], [np.sqrt(s2)], jnp.float64)
-            r = fp.run(target, JKO_1D, jnp.asarray(x0, jnp.float64), key=jax.random.key(0),
-                       steps=1, window=1, progress=False)
+            r = fp.run(
+                target, JKO_1D, jnp.asarray(x0, jnp.float64), key=jax.random.key(0), steps=1, window=1, progress=False
+            )
         assert r.status == "done", r.reason
         assert r.unconstrained.dtype == np.float64
         y = r.unconstrained[:, 0]
@@ -194,8 +197,15 @@ def test_stiff_explicit_langevin_blows_up_and_returns_last_good_ensemble():
     stiff coordinate is multiplied by |1 - hL| = 9 per step and overflows. The driver rolls back
     and returns the last good (finite) ensemble with the reason."""
     x0 = jax.random.normal(jax.random.key(1), (1000, 2)) * jnp.asarray(STIFF_SD)
-    r = fp.run(gauss([0.0, 0.0], STIFF_SD), fp.Langevin(step_size=1e-3), x0,
-               key=jax.random.key(0), steps=200, window=50, progress=False)
+    r = fp.run(
+        gauss([0.0, 0.0], STIFF_SD),
+        fp.Langevin(step_size=1e-3),
+        x0,
+        key=jax.random.key(0),
+        steps=200,
+        window=50,
+        progress=False,
+    )
     assert r.status == "blow-up"
     assert "non-finite" in r.reason or "growth" in r.reason, r.reason
     assert np.all(np.isfinite(r.unconstrained))
@@ -229,8 +239,15 @@ def test_stiff_jko_stays_finite_and_reaches_target_variances():
     allowed above 1."""
     n, steps = 300, 40
     x0 = jax.random.normal(jax.random.key(3), (n, 2)) * jnp.asarray(STIFF_SD * [5.0, 2.0])
-    r = fp.run(gauss([0.0, 0.0], STIFF_SD), JKO(step_size=0.1), x0, key=jax.random.key(0),
-               steps=steps, window=10, progress=False)
+    r = fp.run(
+        gauss([0.0, 0.0], STIFF_SD),
+        JKO(step_size=0.1),
+        x0,
+        key=jax.random.key(0),
+        steps=steps,
+        window=10,
+        progress=False,
+    )
     assert r.status == "done", r.reason
     assert np.all(np.isfinite(r.unconstrained))
     ratio = np.var(r.unconstrained.astype(np.float64), axis=0, ddof=1) / STIFF_SD**2
@@ -244,6 +261,7 @@ def test_stiff_jko_stays_finite_and_reaches_target_variances():
 # A capped inner solve is never silent
 # --------------------------------------------------------------------------------------------
 
+
 def test_capped_inner_solves_are_reported():
     """max_iters=1 with tol=1e-12 cannot converge on a stiff 2-D Gaussian: every particle's
     solve (ImplicitLangevin) and every ensemble solve (JKO) is capped, and the counts reach the
@@ -252,15 +270,23 @@ def test_capped_inner_solves_are_reported():
     target = gauss([0.0, 0.0], STIFF_SD)
     n, steps = 64, 10
     x0 = jax.random.normal(jax.random.key(1), (n, 2)) * jnp.asarray(STIFF_SD)
-    r = fp.run(target, ImplicitLangevin(step_size=0.1, solver=capped), x0,
-               key=jax.random.key(0), steps=steps, window=steps, progress=False)
+    r = fp.run(
+        target,
+        ImplicitLangevin(step_size=0.1, solver=capped),
+        x0,
+        key=jax.random.key(0),
+        steps=steps,
+        window=steps,
+        progress=False,
+    )
     assert r.history.last["inner_capped"] == n * steps
     assert r.report["inner_capped_total"] == n * steps
     assert r.history.last["inner_iters"] == 1.0
     assert r.history.last["inner_residual"] > 1e-12
 
-    r = fp.run(target, JKO(step_size=0.1, solver=capped), x0, key=jax.random.key(0),
-               steps=steps, window=steps, progress=False)
+    r = fp.run(
+        target, JKO(step_size=0.1, solver=capped), x0, key=jax.random.key(0), steps=steps, window=steps, progress=False
+    )
     assert r.history.last["inner_capped"] == steps
     assert r.report["inner_capped_total"] == steps
 
@@ -268,6 +294,7 @@ def test_capped_inner_solves_are_reported():
 # --------------------------------------------------------------------------------------------
 # Input checks
 # --------------------------------------------------------------------------------------------
+
 
 def test_bad_configuration_errors():
     with pytest.raises(ValueError, match="step_size"):
@@ -283,7 +310,6 @@ def test_bad_configuration_errors():
     with pytest.raises(ValueError, match="block"):
         JKO(block=0)
     with pytest.raises(ValueError, match="more particles than dimensions"):
-        fp.run(gauss([0.0], [1.0]), JKO(), jnp.zeros((1, 1)), key=jax.random.key(0), steps=1,
-               progress=False)
+        fp.run(gauss([0.0], [1.0]), JKO(), jnp.zeros((1, 1)), key=jax.random.key(0), steps=1, progress=False)
     # configurations are hashable (static arguments of the compiled step)
     assert hash(JKO()) == hash(JKO()) and hash(IL) == hash(ImplicitLangevin(step_size=0.1))

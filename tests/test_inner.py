@@ -283,6 +283,7 @@ def test_float32_stall_stops_early_and_is_reported_capped():
 # the solver as a pytree: numbers traced, structure static
 # --------------------------------------------------------------------------
 
+
 def test_solver_is_a_pytree_with_numbers_as_leaves():
     solver = InnerSolver(method="lbfgs", tol=1e-5, max_iters=77, memory_size=7, linesearch_steps=13)
     leaves = jax.tree_util.tree_leaves(solver)
@@ -330,12 +331,12 @@ def test_solver_as_jit_argument_compiles_once_for_new_numbers():
     # a traced learning rate: first-order methods and L-BFGS with a fixed rate
     for method in ("sgd", "lbfgs"):
         traces.clear()
-        outs = [solve(InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300), x0)
-                for lr in (0.1, 0.2)]
+        outs = [solve(InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300), x0) for lr in (0.1, 0.2)]
         assert len(traces) == 1, method
         for (x, rep), lr in zip(outs, (0.1, 0.2)):
-            ref_x, ref_rep = minimise(InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300),
-                                      _quadratic_3, x0)
+            ref_x, ref_rep = minimise(
+                InnerSolver(method=method, learning_rate=lr, tol=1e-5, max_iters=300), _quadratic_3, x0
+            )
             assert int(rep.iters) == int(ref_rep.iters)
             np.testing.assert_allclose(np.asarray(x), np.asarray(ref_x), rtol=1e-6, atol=1e-7)
         assert int(outs[0][1].iters) != int(outs[1][1].iters)  # the rate really changed

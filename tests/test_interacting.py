@@ -12,6 +12,7 @@ bandwidth. As a yardstick the tests use the standard errors of N independent dra
 at N = 300). Mode shares on the mixture are compared with the binomial standard error
 sqrt(w (1 - w) / N) of N independent draws.
 """
+
 import os
 import subprocess
 import sys
@@ -110,8 +111,11 @@ W_LEFT = 0.3
 
 def _mixture_log_p(x):
     """0.3 N(-2, 1) + 0.7 N(2, 1): the 1-D example of the SVGD paper (2016) with weights 0.3/0.7."""
-    return logsumexp(jnp.array([jnp.log(W_LEFT) + jst.norm.logpdf(x[0], -2.0, 1.0),
-                                jnp.log(1 - W_LEFT) + jst.norm.logpdf(x[0], 2.0, 1.0)]))
+    return logsumexp(
+        jnp.array(
+            [jnp.log(W_LEFT) + jst.norm.logpdf(x[0], -2.0, 1.0), jnp.log(1 - W_LEFT) + jst.norm.logpdf(x[0], 2.0, 1.0)]
+        )
+    )
 
 
 @pytest.mark.parametrize(
@@ -196,8 +200,7 @@ def test_blob_whitened_bandwidth_is_affine_equivariant():
         stepper = BlobFlow(step_size=0.1)
         g, eps = stepper.entropy_gradient(x)
         g_a, eps_a = stepper.entropy_gradient(x @ a.T + 5.0)
-        np.testing.assert_allclose(np.asarray(g_a), np.asarray(jnp.linalg.solve(a.T, g.T).T), rtol=1e-5,
-                                   atol=1e-8)
+        np.testing.assert_allclose(np.asarray(g_a), np.asarray(jnp.linalg.solve(a.T, g.T).T), rtol=1e-5, atol=1e-8)
         assert float(eps) == pytest.approx(float(eps_a), rel=1e-6)
 
 
@@ -229,8 +232,9 @@ def test_svgd_step_memory_is_blocked():
     raises the peak resident memory of a fresh process by less than 1 GiB (compilation included;
     ru_maxrss is in KiB on Linux)."""
     env = dict(os.environ, JAX_PLATFORMS="cpu")
-    out = subprocess.run([sys.executable, "-c", _MEMORY_SCRIPT], capture_output=True, text=True,
-                         env=env, timeout=300, check=True)
+    out = subprocess.run(
+        [sys.executable, "-c", _MEMORY_SCRIPT], capture_output=True, text=True, env=env, timeout=300, check=True
+    )
     growth = int(out.stdout.strip().splitlines()[-1])
     assert growth < 2**30, f"peak memory grew by {growth / 2**20:.0f} MiB"
 

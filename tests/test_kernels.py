@@ -36,6 +36,7 @@ from flowpost.numerics import (
 # independent numpy references
 # --------------------------------------------------------------------------
 
+
 def np_kernel(kind: str, param: tuple, x: np.ndarray, y: np.ndarray):
     """k(x, y) and grad_x k(x, y) by broadcasting per-pair differences.
 
@@ -130,6 +131,7 @@ def test_kernel_configs_are_hashable_and_validated():
 # bandwidth rules
 # --------------------------------------------------------------------------
 
+
 def test_median_distance_against_scipy():
     with jax.enable_x64(True):
         x = _points(2, 50, 3)
@@ -141,9 +143,7 @@ def test_median_distance_against_scipy():
         got = float(median_distance(x, max_points=m))
         assert got == pytest.approx(np.median(pdist(x[idx])), rel=1e-12)
         # RBF(None) uses the median heuristic of "Stein variational gradient descent" (2016)
-        assert float(RBF().scale_for(jnp.asarray(x))) == pytest.approx(
-            median_heuristic_reference(x), rel=1e-12
-        )
+        assert float(RBF().scale_for(jnp.asarray(x))) == pytest.approx(median_heuristic_reference(x), rel=1e-12)
     with pytest.raises(ValueError, match="at least 2"):
         median_distance(np.zeros((1, 2), np.float32))
 
@@ -162,6 +162,7 @@ def test_normal_reference_bandwidth_formula():
 # --------------------------------------------------------------------------
 # blocked kernel sums
 # --------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("kernel,kind,param", [*KERNELS, (RBF(), "rbf", None)])
 def test_kernel_sums_match_brute_force(kernel, kind, param):
@@ -222,6 +223,7 @@ def test_bad_inputs_raise_clear_errors():
 # --------------------------------------------------------------------------
 # random batches ("Random batch methods for interacting particle systems" (2020))
 # --------------------------------------------------------------------------
+
 
 def test_random_batch_with_full_batch_equals_full_sums():
     x = _points(9, 30, 3).astype(np.float32)
@@ -288,12 +290,11 @@ def test_random_batch_means_are_unbiased():
 # Gaussian kernel density
 # --------------------------------------------------------------------------
 
+
 def scipy_log_kde(y: np.ndarray, centres: np.ndarray, h: float) -> np.ndarray:
     """log mean_j N(y; x_j, h^2 I) with scipy.stats.multivariate_normal."""
     d = centres.shape[1]
-    logs = np.stack(
-        [stats.multivariate_normal(mean=c, cov=h * h * np.eye(d)).logpdf(y) for c in centres]
-    )
+    logs = np.stack([stats.multivariate_normal(mean=c, cov=h * h * np.eye(d)).logpdf(y) for c in centres])
     return np_logsumexp(logs, axis=0) - math.log(len(centres))
 
 
@@ -306,9 +307,7 @@ def test_log_kde_against_scipy_mixture():
             np.testing.assert_allclose(log_kde(y, centres, 0.6, block=block), ref, rtol=1e-11)
         # far-away points: logsumexp keeps it finite and exact
         far = y + 40.0
-        np.testing.assert_allclose(
-            log_kde(far, centres, 0.6, block=5), scipy_log_kde(far, centres, 0.6), rtol=1e-10
-        )
+        np.testing.assert_allclose(log_kde(far, centres, 0.6, block=5), scipy_log_kde(far, centres, 0.6), rtol=1e-10)
 
 
 def test_log_kde_gradients_against_finite_differences():
@@ -355,6 +354,7 @@ def test_log_kde_keeps_float32():
 # whitening
 # --------------------------------------------------------------------------
 
+
 def test_whiten_against_numpy_covariance():
     with jax.enable_x64(True):
         a = np.array([[2.0, 0.0, 0.0], [1.5, 0.5, 0.0], [-1.0, 0.3, 0.1]])
@@ -377,6 +377,7 @@ def test_whiten_against_numpy_covariance():
 # --------------------------------------------------------------------------
 # memory: no N x N buffer in the compiled computations
 # --------------------------------------------------------------------------
+
 
 def largest_buffer(hlo_text: str) -> int:
     """Largest element count of any array shape appearing in optimised HLO text."""
@@ -410,6 +411,7 @@ def test_blocked_computations_never_build_an_n_by_n_buffer():
 # kernels as pytrees: numbers traced, no recompilation for a new bandwidth
 # --------------------------------------------------------------------------
 
+
 def test_kernels_are_pytrees_with_numbers_as_leaves():
     leaves = jax.tree_util.tree_leaves
     assert leaves(RBF(0.5)) == [0.5]
@@ -423,8 +425,10 @@ def test_kernels_are_pytrees_with_numbers_as_leaves():
 
 @pytest.mark.parametrize(
     "first, second, kind",
-    [((RBF(0.5), (0.5,)), (RBF(0.9), (0.9,)), "rbf"),
-     ((IMQ(1.0, -0.5), (1.0, -0.5)), (IMQ(2.0, -0.8), (2.0, -0.8)), "imq")],
+    [
+        ((RBF(0.5), (0.5,)), (RBF(0.9), (0.9,)), "rbf"),
+        ((IMQ(1.0, -0.5), (1.0, -0.5)), (IMQ(2.0, -0.8), (2.0, -0.8)), "imq"),
+    ],
 )
 def test_jitted_function_taking_a_kernel_compiles_once(first, second, kind):
     traces = []
@@ -463,8 +467,11 @@ def test_kernel_numbers_traced_through_every_blocked_function():
     key = jax.random.key(6)
     for kernel in (IMQ(1.0, -0.5), IMQ(1.5, -0.3)):
         got = everything(kernel, x, v, key)
-        ref = (interaction_means(kernel, x, v, block=8), interaction_means(kernel, x, v, batch=5, key=key),
-               random_batch_sums(kernel, x, v, key, 5))
+        ref = (
+            interaction_means(kernel, x, v, block=8),
+            interaction_means(kernel, x, v, batch=5, key=key),
+            random_batch_sums(kernel, x, v, key, 5),
+        )
         for g, r in zip(jax.tree.leaves(got), jax.tree.leaves(ref)):
             assert g.dtype == r.dtype  # float32 kept with traced kernel numbers
             np.testing.assert_allclose(np.asarray(g), np.asarray(r), rtol=1e-6, atol=1e-7)

@@ -3,6 +3,7 @@
 Monte-Carlo error: N independent particles; the standard error of a Gaussian sample
 variance v is v * sqrt(2 / N). Tolerances are Z = 5 standard errors.
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -42,8 +43,14 @@ def test_baoab_harmonic_position_variance_exact(friction):
     n = 40_000
     x0 = 0.5 * jax.random.normal(jax.random.key(3), (n, 1))
     for h in (0.5, 1.0, 1.5):
-        r = fp.run(_std_normal, KineticLangevin(step_size=h, friction=friction), x0,
-                   key=jax.random.key(7), steps=100, progress=False)
+        r = fp.run(
+            _std_normal,
+            KineticLangevin(step_size=h, friction=friction),
+            x0,
+            key=jax.random.key(7),
+            steps=100,
+            progress=False,
+        )
         x = r.unconstrained[:, 0]
         v = np.asarray(r.state.v)[:, 0]
         var_x, var_v = np.var(x, ddof=1), np.var(v, ddof=1)
@@ -65,8 +72,15 @@ def test_baoab_one_score_per_step_and_carried_score():
     autodiff of jax.scipy.stats.norm.logpdf, i.e. -x)."""
     n = 64
     x0 = jax.random.normal(jax.random.key(0), (n, 2))
-    r = fp.run(_std_normal, KineticLangevin(step_size=0.3, friction=2.0), x0, key=jax.random.key(1),
-               steps=50, window=25, progress=False)
+    r = fp.run(
+        _std_normal,
+        KineticLangevin(step_size=0.3, friction=2.0),
+        x0,
+        key=jax.random.key(1),
+        steps=50,
+        window=25,
+        progress=False,
+    )
     evals = [rec["grad_evals"] for rec in r.history.records if "grad_evals" in rec]
     assert evals == [25.0, 25.0]
     # the kick keeps it

@@ -5,6 +5,7 @@ sd / sqrt(N) and that of a Gaussian sample variance is v * sqrt(2 / N); of a Gau
 covariance entry, sqrt((C_ii C_jj + C_ij^2) / N) (Wishart second moments). Tolerances are
 5 of these standard errors unless the test says otherwise.
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -19,6 +20,7 @@ Z = 5.0  # tolerance in Monte-Carlo standard errors
 def _std_normal_scaled(s2):
     def log_p(x):
         return jnp.sum(jst.norm.logpdf(x, 0.0, jnp.sqrt(s2)))
+
     return log_p
 
 
@@ -57,8 +59,14 @@ def test_normal_model_known_variance():
 
     n, h = 10_000, 0.01
     init = {"mu": jnp.zeros(n)}
-    r = fp.run(fp.Target(log_p, data=jnp.asarray(y)), fp.Langevin(step_size=h), init,
-               key=jax.random.key(2), steps=600, progress=False)
+    r = fp.run(
+        fp.Target(log_p, data=jnp.asarray(y)),
+        fp.Langevin(step_size=h),
+        init,
+        key=jax.random.key(2),
+        steps=600,
+        progress=False,
+    )
     mu = np.asarray(r.particles["mu"])
     var_ref = tau_n2 / (1 - h / (2 * tau_n2))
     assert abs(mu.mean() - mu_n) < Z * np.sqrt(var_ref / n)
@@ -88,8 +96,15 @@ def test_bayesian_linear_regression_pytree():
 
     n, h = 10_000, 0.002
     init = {"w": jnp.zeros((n, 4)), "b": jnp.zeros(n)}
-    r = fp.run(fp.Target(log_p, data=(jnp.asarray(X, jnp.float32), jnp.asarray(t, jnp.float32))),
-               fp.Langevin(step_size=h), init, key=jax.random.key(3), steps=1500, window=250, progress=False)
+    r = fp.run(
+        fp.Target(log_p, data=(jnp.asarray(X, jnp.float32), jnp.asarray(t, jnp.float32))),
+        fp.Langevin(step_size=h),
+        init,
+        key=jax.random.key(3),
+        steps=1500,
+        window=250,
+        progress=False,
+    )
     assert r.particles["w"].shape == (n, 4) and r.particles["b"].shape == (n,)
     draws = np.column_stack([r.particles["w"], r.particles["b"]])
     C = S @ np.linalg.inv(np.eye(5) - h * S_inv / 2)

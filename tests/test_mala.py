@@ -6,6 +6,7 @@ sample variance v * sqrt(2 / N), and that of a Gaussian sample covariance entry
 sqrt((C_ii C_jj + C_ij^2) / N) (second moments of a Gaussian sample covariance). Tolerances are Z = 4.5 standard
 errors (two-sided false-alarm rate below 1e-5 per comparison, fixed keys).
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -21,6 +22,7 @@ Z = 4.5  # tolerance in Monte-Carlo standard errors
 def _normal(s2):
     def log_p(x):
         return jnp.sum(jst.norm.logpdf(x, 0.0, jnp.sqrt(s2)))
+
     return log_p
 
 
@@ -97,6 +99,7 @@ def test_mala_bayesian_linear_regression_with_tuning():
 def test_mala_rejects_non_finite_proposals():
     """A proposal outside the density's support (log-density -inf) is always rejected, so
     particles stay inside: a half-normal on x > 0 written with an explicit -inf outside."""
+
     def log_p(x):
         return jnp.where(x[0] > 0, jst.norm.logpdf(x[0]), -jnp.inf)
 

@@ -14,7 +14,8 @@ import statistics
 import numpy as np
 import pytest
 import scipy.signal
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from statsmodels.tsa.stattools import acf
 
 from flowpost.diagnostics import (

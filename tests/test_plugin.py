@@ -9,6 +9,7 @@ in-process run when it ends. The
 plugin is found through the ``pytest11`` entry point of the installed package, as in a user's
 project: nothing is registered by hand.
 """
+
 from __future__ import annotations
 
 import textwrap
@@ -35,7 +36,7 @@ SUBPROCESS_TIMEOUT = 240  # seconds; the runs take a few seconds, this is only a
 # A tiny user test file. The model is the normal mean with known unit noise and a N(0, 1)
 # prior; its planted bugs (a custom derivative rule with a factor 2, a dropped first row, a
 # simulator shifted by +3) must each be reported by the matching fixture.
-USER_TESTS = '''
+USER_TESTS = """
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -120,7 +121,7 @@ def test_moments_wrong(fp_moments, fp_reference_families, fp_key):
     model = fp_reference_families.NormalKnownVariance()
     draws = model.draw_posterior(fp_key, {"y": DATA["y"]}, num=2000)
     fp_moments.against(model, {"y": 2.0 * DATA["y"]}, draws)  # the reference of other data
-'''
+"""
 
 
 @pytest.fixture
@@ -133,16 +134,22 @@ def test_fixtures_on_a_user_file(pytester, autoload):
     pytester.makepyfile(test_user=USER_TESTS)
     # 20 datasets in 4 bins (39 draws each) keep the calibration runs to a second or two
     result = pytester.runpytest_subprocess(
-        "-p", "no:cacheprovider", "--flowpost-sbc-datasets=20", "--flowpost-sbc-bins=4",
+        "-p",
+        "no:cacheprovider",
+        "--flowpost-sbc-datasets=20",
+        "--flowpost-sbc-bins=4",
         timeout=SUBPROCESS_TIMEOUT,
     )
     result.assert_outcomes(passed=4, failed=4)
-    result.stdout.fnmatch_lines([
-        "*AssertionError: score of log_p disagrees with finite differences: parameter 'm'*",
-        "*AssertionError: log_p failed health checks:*",
-        "*AssertionError: simulation-based calibration failed (alpha 0.01):*",
-        "*AssertionError: 1 ensemble moment(s) beyond 4.5 standard errors:*",
-    ], consecutive=False)
+    result.stdout.fnmatch_lines(
+        [
+            "*AssertionError: score of log_p disagrees with finite differences: parameter 'm'*",
+            "*AssertionError: log_p failed health checks:*",
+            "*AssertionError: simulation-based calibration failed (alpha 0.01):*",
+            "*AssertionError: 1 ensemble moment(s) beyond 4.5 standard errors:*",
+        ],
+        consecutive=False,
+    )
     out = result.stdout.str()
     assert "- exchangeable: log_p changes when the 8 data rows are permuted" in out
     # every simulated dataset lies 3 above its true mean: the draws sit above the truth, all
@@ -162,7 +169,7 @@ def test_score_tolerance_option(pytester, autoload):
     result.assert_outcomes(passed=2)
 
 
-REGION_TESTS = '''
+REGION_TESTS = """
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -207,7 +214,7 @@ def test_region_and_keywords_refused(fp_score_check, fp_health_check):
         fp_score_check(log_p, Region.near({"m": 0.3}), data=DATA, around={"m": 0.3})
     with pytest.raises(TypeError, match="^fp_health_check: expected keywords .*'scal'"):
         fp_health_check(log_p, data=DATA, around={"m": 0.3}, scal=0.2)
-'''
+"""
 
 
 def test_fixtures_accept_a_region(pytester, autoload):
@@ -217,7 +224,7 @@ def test_fixtures_accept_a_region(pytester, autoload):
     result.assert_outcomes(passed=3)
 
 
-SETTINGS_TESTS = '''
+SETTINGS_TESTS = """
 import jax
 import numpy as np
 
@@ -231,7 +238,7 @@ def test_values(fp_key, fp_score_check, fp_sbc, fp_moments):
     assert np.array_equal(jax.random.key_data(fp_key), jax.random.key_data(jax.random.key({seed})))
     assert jax.tree_util.tree_map(np.shape, fp_sbc.tile({{"a": 1.0, "b": np.zeros(3)}})) == \\
         {{"a": ({draws},), "b": ({draws}, 3)}}
-'''
+"""
 
 
 def _settings_file(**v) -> str:
@@ -239,37 +246,51 @@ def _settings_file(**v) -> str:
 
 
 def test_defaults(pytester, autoload):
-    pytester.makepyfile(test_settings=_settings_file(
-        tol=1e-4, points=16, datasets=100, steps=500, bins=5, alpha=0.01, z=4.5, seed=0))
+    pytester.makepyfile(
+        test_settings=_settings_file(tol=1e-4, points=16, datasets=100, steps=500, bins=5, alpha=0.01, z=4.5, seed=0)
+    )
     pytester.runpytest_inprocess("-p", "no:cacheprovider").assert_outcomes(passed=1)
 
 
 def test_command_line_beats_ini(pytester, autoload):
-    pytester.makeini(textwrap.dedent("""
+    pytester.makeini(
+        textwrap.dedent("""
         [pytest]
         flowpost_score_tol = 0.25
         flowpost_sbc_steps = 77
         flowpost_moment_z = 3.5
-        """))
-    pytester.makepyfile(test_settings=_settings_file(
-        tol=0.5, points=3, datasets=20, steps=77, bins=4, alpha=0.05, z=3.5, seed=5))
+        """)
+    )
+    pytester.makepyfile(
+        test_settings=_settings_file(tol=0.5, points=3, datasets=20, steps=77, bins=4, alpha=0.05, z=3.5, seed=5)
+    )
     result = pytester.runpytest_inprocess(
-        "-p", "no:cacheprovider", "--flowpost-score-tol=0.5", "--flowpost-score-points=3",
-        "--flowpost-sbc-datasets=20", "--flowpost-sbc-bins=4", "--flowpost-sbc-alpha=0.05",
+        "-p",
+        "no:cacheprovider",
+        "--flowpost-score-tol=0.5",
+        "--flowpost-score-points=3",
+        "--flowpost-sbc-datasets=20",
+        "--flowpost-sbc-bins=4",
+        "--flowpost-sbc-alpha=0.05",
         "--flowpost-seed=5",
     )
     result.assert_outcomes(passed=1)
 
 
-@pytest.mark.parametrize("args, message", [
-    (["--flowpost-sbc-alpha=2"], "--flowpost-sbc-alpha: expected a number strictly between 0 and 1; got '2'"),
-    (["--flowpost-score-tol=-1"], "--flowpost-score-tol: expected a finite positive number; got '-1'"),
-    (["--flowpost-sbc-datasets=many"], "--flowpost-sbc-datasets: expected a positive integer; got 'many'"),
-    (["--flowpost-sbc-bins=1"],
-     "--flowpost-sbc-bins (or ini flowpost_sbc_bins): expected at least 2 bins; got 1"),
-    (["--flowpost-sbc-datasets=3", "--flowpost-sbc-bins=4"], "--flowpost-sbc-datasets (or ini "
-     "flowpost_sbc_datasets): expected at least as many datasets as bins (4); got 3"),
-])
+@pytest.mark.parametrize(
+    "args, message",
+    [
+        (["--flowpost-sbc-alpha=2"], "--flowpost-sbc-alpha: expected a number strictly between 0 and 1; got '2'"),
+        (["--flowpost-score-tol=-1"], "--flowpost-score-tol: expected a finite positive number; got '-1'"),
+        (["--flowpost-sbc-datasets=many"], "--flowpost-sbc-datasets: expected a positive integer; got 'many'"),
+        (["--flowpost-sbc-bins=1"], "--flowpost-sbc-bins (or ini flowpost_sbc_bins): expected at least 2 bins; got 1"),
+        (
+            ["--flowpost-sbc-datasets=3", "--flowpost-sbc-bins=4"],
+            "--flowpost-sbc-datasets (or ini "
+            "flowpost_sbc_datasets): expected at least as many datasets as bins (4); got 3",
+        ),
+    ],
+)
 def test_bad_options_are_usage_errors(pytester, autoload, args, message):
     pytester.makepyfile(test_nothing="def test_nothing():\n    pass\n")
     result = pytester.runpytest_inprocess("-p", "no:cacheprovider", *args)
@@ -288,8 +309,15 @@ def test_bad_ini_value_names_the_key(pytester, autoload):
 def test_fixture_listing_help_and_header(pytester, autoload):
     pytester.makepyfile(test_nothing="def test_nothing():\n    pass\n")
     listing = pytester.runpytest_inprocess("-p", "no:cacheprovider", "--fixtures").stdout.str()
-    for name in ("fp_key", "fp_score_check", "fp_health_check", "fp_sbc", "fp_moments",
-                 "fp_reference_families", "fp_each_reference_model"):
+    for name in (
+        "fp_key",
+        "fp_score_check",
+        "fp_health_check",
+        "fp_sbc",
+        "fp_moments",
+        "fp_reference_families",
+        "fp_each_reference_model",
+    ):
         assert name in listing
     usage = pytester.runpytest_inprocess("-p", "no:cacheprovider", "--help").stdout.str()
     assert "--flowpost-sbc-datasets" in usage and "flowpost_score_tol" in usage
@@ -298,21 +326,28 @@ def test_fixture_listing_help_and_header(pytester, autoload):
 
 
 def test_each_reference_model_is_parametrised(pytester, autoload):
-    pytester.makepyfile(test_families='''
+    pytester.makepyfile(
+        test_families="""
 def test_family(fp_each_reference_model, fp_reference_families):
     assert isinstance(fp_each_reference_model, tuple(fp_reference_families))
-''')
+"""
+    )
     result = pytester.runpytest_inprocess("-p", "no:cacheprovider", "-v")
     result.assert_outcomes(passed=5)
-    result.stdout.fnmatch_lines([
-        "*test_family?NormalKnownVariance? PASSED*", "*test_family?BetaBinomial? PASSED*",
-        "*test_family?GammaPoisson? PASSED*", "*test_family?DirichletMultinomial? PASSED*",
-        "*test_family?LinearRegressionKnownNoise? PASSED*",
-    ])
+    result.stdout.fnmatch_lines(
+        [
+            "*test_family?NormalKnownVariance? PASSED*",
+            "*test_family?BetaBinomial? PASSED*",
+            "*test_family?GammaPoisson? PASSED*",
+            "*test_family?DirichletMultinomial? PASSED*",
+            "*test_family?LinearRegressionKnownNoise? PASSED*",
+        ]
+    )
 
 
 def test_families_by_name(pytester, autoload):
-    pytester.makepyfile(test_families='''
+    pytester.makepyfile(
+        test_families="""
 import pytest
 from flowpost.testing import CLOSED_FORM_MODELS, GammaPoisson
 
@@ -322,16 +357,20 @@ def test_names(fp_reference_families):
     assert fp_reference_families.GammaPoisson is GammaPoisson
     with pytest.raises(AttributeError, match="no closed-form family named 'Poisson'"):
         fp_reference_families.Poisson
-''')
+"""
+    )
     pytester.runpytest_inprocess("-p", "no:cacheprovider").assert_outcomes(passed=1)
 
 
-@pytest.mark.parametrize("counts, start", [
-    ([30, 10, 8, 12, 40], "U shape"),          # ends heavy
-    ([5, 25, 40, 22, 8], "hump"),              # middle heavy
-    ([5, 10, 20, 25, 40], "slope up to high ranks"),
-    ([40, 25, 20, 10, 5], "slope down to low ranks"),
-])
+@pytest.mark.parametrize(
+    "counts, start",
+    [
+        ([30, 10, 8, 12, 40], "U shape"),  # ends heavy
+        ([5, 25, 40, 22, 8], "hump"),  # middle heavy
+        ([5, 10, 20, 25, 40], "slope up to high ranks"),
+        ([40, 25, 20, 10, 5], "slope down to low ranks"),
+    ],
+)
 def test_rank_shape_words(counts, start):
     # the readings given in "Validating Bayesian inference algorithms with simulation-based
     # calibration" (2018): U shape = draws too narrow, hump = too wide, slope = biased

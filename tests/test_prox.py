@@ -18,7 +18,8 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.optimize
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from flowpost.numerics import InnerSolver
@@ -63,10 +64,7 @@ def scalar_prox_reference(penalty, v, h, lo, hi):
 def test_l1_matches_scalar_minimisation(v, h, lam):
     with jax.enable_x64(True):
         got = np.asarray(L1Penalty(lam)(jnp.asarray(v), h))
-    ref = [
-        scalar_prox_reference(lambda x: lam * abs(x), vi, h, min(vi, 0.0) - 1.0, max(vi, 0.0) + 1.0)
-        for vi in v
-    ]
+    ref = [scalar_prox_reference(lambda x: lam * abs(x), vi, h, min(vi, 0.0) - 1.0, max(vi, 0.0) + 1.0) for vi in v]
     np.testing.assert_allclose(got, ref, atol=1e-6)
 
 
@@ -104,10 +102,7 @@ def test_box_matches_constrained_minimisation(data, v, h):
     with jax.enable_x64(True):
         got = np.asarray(box(jnp.asarray(v), h))
         assert float(box.value(jnp.asarray(got))) == 0.0
-    ref = [
-        scalar_prox_reference(lambda x: 0.0, vi, h, li, hi_) if hi_ > li else li
-        for vi, li, hi_ in zip(v, lo, hi)
-    ]
+    ref = [scalar_prox_reference(lambda x: 0.0, vi, h, li, hi_) if hi_ > li else li for vi, li, hi_ in zip(v, lo, hi)]
     np.testing.assert_allclose(got, ref, atol=1e-6)
 
 
@@ -189,9 +184,7 @@ def test_values_of_terms():
     # g(x) by definition, computed with numpy
     np.testing.assert_allclose(np.asarray(L1Penalty(2.0).value(xj)), 2.0 * np.abs(x).sum(1), rtol=1e-6)
     w = (1.0, 0.0, 3.0)
-    np.testing.assert_allclose(
-        np.asarray(WeightedL1Penalty(w).value(xj)), (np.abs(x) * w).sum(1), rtol=1e-6
-    )
+    np.testing.assert_allclose(np.asarray(WeightedL1Penalty(w).value(xj)), (np.abs(x) * w).sum(1), rtol=1e-6)
     np.testing.assert_array_equal(np.asarray(NonNegative().value(xj)), [np.inf, np.inf])
     np.testing.assert_array_equal(np.asarray(Box(-1.0, 0.4).value(xj)), [np.inf, 0.0])
     assert L1Penalty(2.0).value(xj[0]).shape == ()
@@ -215,9 +208,7 @@ def test_dtype_and_shape_preserved_and_jit_with_traced_step():
     np.testing.assert_allclose(np.asarray(terms[0].map(v32[3], 0.3)), np.asarray(outs[0][3]), rtol=1e-6)
     # independent spot checks with numpy: soft threshold and clip
     v_np = np.asarray(v32, float)
-    np.testing.assert_allclose(
-        np.asarray(outs[0]), np.sign(v_np) * np.maximum(np.abs(v_np) - 0.15, 0.0), atol=1e-6
-    )
+    np.testing.assert_allclose(np.asarray(outs[0]), np.sign(v_np) * np.maximum(np.abs(v_np) - 0.15, 0.0), atol=1e-6)
     np.testing.assert_allclose(np.asarray(outs[3]), np.clip(v_np, -0.5, 0.5), atol=1e-7)
 
 
@@ -294,7 +285,9 @@ def test_prox_by_solver_matches_scipy_for_nonquadratic_g():
         x, rep = jax.jit(lambda v: prox_by_solver(g, v, h, InnerSolver(tol=tol, max_iters=100)))(jnp.asarray(v))
     for i in range(4):
         ref = scipy.optimize.minimize(
-            lambda z: g_np(z) + np.sum((z - v[i]) ** 2) / (2.0 * h), v[i], method="BFGS",
+            lambda z: g_np(z) + np.sum((z - v[i]) ** 2) / (2.0 * h),
+            v[i],
+            method="BFGS",
             options={"gtol": 1e-11},
         )
         np.testing.assert_allclose(np.asarray(x[i]), ref.x, atol=1e-7)
@@ -340,6 +333,7 @@ def test_bad_calls_raise():
 # --------------------------------------------------------------------------
 # terms as pytrees: numbers traced, structure static
 # --------------------------------------------------------------------------
+
 
 def test_terms_are_pytrees_with_numbers_as_leaves():
     leaves = jax.tree_util.tree_leaves

@@ -1,4 +1,5 @@
 """The README's modelling script runs as written and gives a sensible posterior."""
+
 import os
 import re
 from pathlib import Path

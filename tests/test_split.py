@@ -6,6 +6,7 @@ sqrt(p (1 - p) / N); for a general (non-Gaussian) sample variance sqrt((m4 - v^2
 the fourth central moment. Tolerances are Z = 5 standard errors unless a test says
 otherwise. Fixed keys throughout.
 """
+
 from functools import partial
 
 import jax
@@ -101,8 +102,11 @@ def test_lie_and_strang_stationary_variance_and_order():
         for a in a_values:
             h = float(a * S2_LS)
             stepper = Split((ExactMap(_potential_flow), HeatFlow()), step_size=h, order=order)
-            v = float(_time_averaged_second_moment(stepper, jnp.asarray(h, x0u.dtype), target, x0u,
-                                                   jax.random.key(5), burn, steps))
+            v = float(
+                _time_averaged_second_moment(
+                    stepper, jnp.asarray(h, x0u.dtype), target, x0u, jax.random.key(5), burn, steps
+                )
+            )
             expected = S2_LS * formula[order](a)
             rho = np.exp(-a)
             se = expected * np.sqrt(2 / (n * steps) * (1 + rho**2) / (1 - rho**2))
@@ -136,10 +140,12 @@ C1, T1, C2, T2 = 2.0, 0.5, -1.0, 1.5  # likelihood N(c1, t1^2), prior N(c2, t2^2
 
 
 def _named_target():
-    return fp.Target({
-        "likelihood": lambda x: jnp.sum(jst.norm.logpdf(x, C1, T1)),
-        "prior": lambda x: jnp.sum(jst.norm.logpdf(x, C2, T2)),
-    })
+    return fp.Target(
+        {
+            "likelihood": lambda x: jnp.sum(jst.norm.logpdf(x, C1, T1)),
+            "prior": lambda x: jnp.sum(jst.norm.logpdf(x, C2, T2)),
+        }
+    )
 
 
 def test_explicit_and_numerical_proximal_on_named_terms():
@@ -188,7 +194,10 @@ def test_state_layout_and_strang_schedule():
     assert abs(np.var(np.asarray(st.v)) - 1) < Z * np.sqrt(2 / st.v.size)
     strang = Split((Explicit(), HeatFlow()), step_size=0.1, order="strang")
     assert [(type(strang.parts[i]).__name__, f) for i, f in strang.schedule()] == [
-        ("Explicit", 0.5), ("HeatFlow", 1.0), ("Explicit", 0.5)]
+        ("Explicit", 0.5),
+        ("HeatFlow", 1.0),
+        ("Explicit", 0.5),
+    ]
 
 
 def test_split_errors_are_clear():
@@ -217,6 +226,7 @@ def test_split_errors_are_clear():
 # ----------------------------------------------------------------------------------------
 # forward-backward
 # ----------------------------------------------------------------------------------------
+
 
 def test_forward_backward_exact_fixed_point_against_langevin_bias():
     """N(0, s2), s2 = 2, h = 0.5. Forward-backward with the closed-form Gaussian entropy step
@@ -288,16 +298,32 @@ def test_forward_backward_1000d_gaussian_no_step_bias():
         return np.mean(proj**2, axis=0), np.sum(centred**2) / len(u)
 
     # the monitor is not under test here; the bare one keeps this 1000-d test cheap
-    fb = fp.run(target, ForwardBackward(step_size=h), x0, key=jax.random.key(0), steps=6, window=6, progress=False,
-                monitor=BareMonitor())
+    fb = fp.run(
+        target,
+        ForwardBackward(step_size=h),
+        x0,
+        key=jax.random.key(0),
+        steps=6,
+        window=6,
+        progress=False,
+        monitor=BareMonitor(),
+    )
     var_dir, trace = eigen_variances(fb.unconstrained)
     np.testing.assert_allclose(var_dir / lam[pick], 1.0, atol=2e-3)
     assert abs(trace / lam.sum() - 1) < 2e-3, trace / lam.sum()
 
     # ULA's AR(1) factor |1 - h/lam| <= 0.4 here: after 10 steps the variance is within
     # 0.4^20 ~ 1e-8 (relative) of stationary
-    la = fp.run(target, fp.Langevin(step_size=h), x0, key=jax.random.key(0), steps=10, window=10, progress=False,
-                monitor=BareMonitor())
+    la = fp.run(
+        target,
+        fp.Langevin(step_size=h),
+        x0,
+        key=jax.random.key(0),
+        steps=10,
+        window=10,
+        progress=False,
+        monitor=BareMonitor(),
+    )
     var_dir, trace = eigen_variances(la.unconstrained)
     se_dir = lam_lang[pick] * np.sqrt(2 / n)
     assert np.all(np.abs(var_dir - lam_lang[pick]) < Z * se_dir), (var_dir, lam_lang[pick])
@@ -323,8 +349,15 @@ def test_forward_backward_kernel_entropy_from_uniform_start():
     crit = ss.kstwo(n).ppf(0.95)
     ref = ss.norm(0, np.sqrt(s2)).cdf
     assert ss.kstest(np.asarray(x0[:, 0]), ref).statistic > crit
-    r = fp.run(log_p, ForwardBackward(step_size=0.5, entropy="kernel"), x0, key=jax.random.key(0),
-               steps=30, window=15, progress=False)
+    r = fp.run(
+        log_p,
+        ForwardBackward(step_size=0.5, entropy="kernel"),
+        x0,
+        key=jax.random.key(0),
+        steps=30,
+        window=15,
+        progress=False,
+    )
     u = r.unconstrained[:, 0]
     b2 = (4 / (3 * n)) ** 0.4
     assert abs(np.var(u) / s2 - 1) < b2, np.var(u)
@@ -400,10 +433,18 @@ def test_proximal_langevin_laplace_prior_against_quadrature():
         f = lambda t, neg=neg: np.exp(-neg(t))
         z = si.quad(f, -20, 20, points=[0.0], limit=200)[0]
         m4 = si.quad(lambda t: (t - smooth[0]) ** 4 * f(t), -20, 20, points=[0.0], limit=200)[0] / z
-        se = np.array([np.sqrt(smooth[1] / n), np.sqrt((m4 - smooth[1] ** 2) / n),
-                       np.sqrt(smooth[2] * (1 - smooth[2]) / n)])
-        r = fp.run(log_lik, ProximalLangevin(step_size=h, prox=L1Penalty(RATE), smoothing=lam), x0,
-                   key=jax.random.key(0), steps=1500, window=500, progress=False)
+        se = np.array(
+            [np.sqrt(smooth[1] / n), np.sqrt((m4 - smooth[1] ** 2) / n), np.sqrt(smooth[2] * (1 - smooth[2]) / n)]
+        )
+        r = fp.run(
+            log_lik,
+            ProximalLangevin(step_size=h, prox=L1Penalty(RATE), smoothing=lam),
+            x0,
+            key=jax.random.key(0),
+            steps=1500,
+            window=500,
+            progress=False,
+        )
         u = r.unconstrained[:, 0].astype(np.float64)
         measured = np.array([u.mean(), u.var(ddof=1), np.mean(u > 0)])
         assert np.all(np.abs(measured - smooth) < Z * se), (lam, measured, smooth, se)
@@ -449,8 +490,15 @@ def test_box_constraint_by_projection_against_truncnorm():
     measured = []
     for i, h in enumerate((4e-3, 1e-3)):
         x0 = jax.random.uniform(jax.random.key(10 + i), (n, 1))
-        r = fp.run(log_lik, ProximalLangevin(step_size=h, prox=Box(0.0, 1.0), variant="forward_prox"), x0,
-                   key=jax.random.key(20 + i), steps=round(1.5 / h), window=500, progress=False)
+        r = fp.run(
+            log_lik,
+            ProximalLangevin(step_size=h, prox=Box(0.0, 1.0), variant="forward_prox"),
+            x0,
+            key=jax.random.key(20 + i),
+            steps=round(1.5 / h),
+            window=500,
+            progress=False,
+        )
         u = r.unconstrained[:, 0].astype(np.float64)
         assert u.min() >= 0.0 and u.max() <= 1.0
         measured.append(np.array([u.mean(), u.var(ddof=1)]))
@@ -465,6 +513,7 @@ def test_proximal_langevin_user_map_and_options():
     """A user's soft-threshold map (the closed form of the L1 proximal map, "Proximal
     algorithms" (2014), sec. 6.5.2) gives the same chain as the built-in L1Penalty, for both
     variants; bad options raise clear errors."""
+
     def soft(v, h):
         return jnp.sign(v) * jnp.maximum(jnp.abs(v) - 2.0 * h, 0.0)
 
@@ -473,10 +522,22 @@ def test_proximal_langevin_user_map_and_options():
 
     x0 = jax.random.normal(jax.random.key(0), (200, 3))
     for variant in ("moreau", "forward_prox"):
-        a = fp.run(log_lik, ProximalLangevin(0.01, prox=soft, variant=variant), x0, key=jax.random.key(1),
-                   steps=20, progress=False)
-        b = fp.run(log_lik, ProximalLangevin(0.01, prox=L1Penalty(2.0), variant=variant), x0,
-                   key=jax.random.key(1), steps=20, progress=False)
+        a = fp.run(
+            log_lik,
+            ProximalLangevin(0.01, prox=soft, variant=variant),
+            x0,
+            key=jax.random.key(1),
+            steps=20,
+            progress=False,
+        )
+        b = fp.run(
+            log_lik,
+            ProximalLangevin(0.01, prox=L1Penalty(2.0), variant=variant),
+            x0,
+            key=jax.random.key(1),
+            steps=20,
+            progress=False,
+        )
         np.testing.assert_allclose(a.unconstrained, b.unconstrained, rtol=1e-6, atol=1e-6)
     # smoothing = step_size turns the Moreau update into prox_{hg}(x) + h grad f(x) + noise
     assert ProximalLangevin(0.01, prox=L1Penalty(1.0)).lam == 0.01

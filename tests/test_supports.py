@@ -7,6 +7,7 @@ Tolerances: 4.5 Monte-Carlo standard errors (sd/sqrt(N) for means; for variances
 error of a sample variance, sqrt((m4 - v^2)/N), with the fourth central moment m4 estimated
 from the draws).
 """
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -28,8 +29,9 @@ def _check(draws, ref_mean, ref_var):
 
 
 def _run(target, init, h, steps, seed):
-    return fp.run(target, fp.Langevin(step_size=h), init, key=jax.random.key(seed), steps=steps,
-                  window=200, progress=False)
+    return fp.run(
+        target, fp.Langevin(step_size=h), init, key=jax.random.key(seed), steps=steps, window=200, progress=False
+    )
 
 
 def test_gamma_on_positive():
@@ -48,8 +50,9 @@ def test_beta_on_interval():
     ref = sst.beta(3.0, 5.0)
     _check(r.particles["p"], ref.mean(), ref.var())
 
-    t2 = fp.Target(lambda th: jst.beta.logpdf(th["q"], 3.0, 5.0, loc=2.0, scale=2.0),
-                   support={"q": fp.Interval(2.0, 4.0)})
+    t2 = fp.Target(
+        lambda th: jst.beta.logpdf(th["q"], 3.0, 5.0, loc=2.0, scale=2.0), support={"q": fp.Interval(2.0, 4.0)}
+    )
     r2 = _run(t2, {"q": jnp.full(N, 3.0)}, 0.01, 1500, 23)
     ref2 = sst.beta(3.0, 5.0, loc=2.0, scale=2.0)
     _check(r2.particles["q"], ref2.mean(), ref2.var())
@@ -58,8 +61,9 @@ def test_beta_on_interval():
 def test_dirichlet_on_simplex():
     """Dirichlet(2, 3, 5) on a simplex parameter; reference scipy.stats.dirichlet."""
     alpha = np.array([2.0, 3.0, 5.0])
-    t = fp.Target(lambda th: jst.dirichlet.logpdf(th["w"], jnp.asarray(alpha, jnp.float32)),
-                  support={"w": fp.Simplex()})
+    t = fp.Target(
+        lambda th: jst.dirichlet.logpdf(th["w"], jnp.asarray(alpha, jnp.float32)), support={"w": fp.Simplex()}
+    )
     r = _run(t, {"w": jnp.tile(jnp.asarray(alpha / alpha.sum(), jnp.float32), (N, 1))}, 0.01, 1500, 24)
     w = np.asarray(r.particles["w"])
     np.testing.assert_allclose(w.sum(1), 1.0, atol=1e-5)

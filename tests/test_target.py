@@ -1,4 +1,5 @@
 """Target: flattening, supports with their log-Jacobians, and the errors for bad input."""
+
 import jax
 import jax.numpy as jnp
 import jax.scipy.stats as jst
@@ -18,8 +19,10 @@ def _init(n=8):
 
 
 def test_bind_shapes_and_round_trip():
-    t = fp.Target(lambda th: jst.norm.logpdf(th["s"]) + jnp.sum(th["p"]) + th["r"],
-                  support={"s": fp.Positive(), "p": fp.Simplex(), "r": fp.Interval(-1, 2)})
+    t = fp.Target(
+        lambda th: jst.norm.logpdf(th["s"]) + jnp.sum(th["p"]) + th["r"],
+        support={"s": fp.Positive(), "p": fp.Simplex(), "r": fp.Interval(-1, 2)},
+    )
     init = {"s": jnp.full(5, 2.0), "p": jnp.tile(jnp.array([0.2, 0.3, 0.5]), (5, 1)), "r": jnp.full(5, 0.5)}
     bound, x = t.bind(init)
     assert x.shape == (5, 1 + 2 + 1)  # the simplex of 3 entries has 2 free coordinates
@@ -51,8 +54,14 @@ def test_log_jacobian_matches_autodiff_determinant(support, shape):
 
 def test_non_scalar_log_density_is_named():
     with pytest.raises(ValueError, match=r"log_p must return a scalar.*\(3,\)"):
-        fp.run(lambda th: th["w"] * 2.0, fp.Langevin(step_size=0.1), _init(), key=jax.random.key(0),
-               steps=1, progress=False)
+        fp.run(
+            lambda th: th["w"] * 2.0,
+            fp.Langevin(step_size=0.1),
+            _init(),
+            key=jax.random.key(0),
+            steps=1,
+            progress=False,
+        )
 
 
 def test_non_finite_start_names_particles_and_parameters():
@@ -64,14 +73,32 @@ def test_non_finite_start_names_particles_and_parameters():
 
 def test_init_that_does_not_match_log_p():
     with pytest.raises(ValueError, match=r"init does not match what log_p reads.*KeyError"):
-        fp.run(_model, fp.Langevin(step_size=0.1), {"a": jnp.zeros(4), "v": jnp.zeros((4, 3))},
-               key=jax.random.key(0), steps=1, progress=False)
+        fp.run(
+            _model,
+            fp.Langevin(step_size=0.1),
+            {"a": jnp.zeros(4), "v": jnp.zeros((4, 3))},
+            key=jax.random.key(0),
+            steps=1,
+            progress=False,
+        )
     with pytest.raises(ValueError, match=r"init: every leaf must share the leading particle axis"):
-        fp.run(_model, fp.Langevin(step_size=0.1), {"a": jnp.zeros(4), "w": jnp.zeros((5, 3))},
-               key=jax.random.key(0), steps=1, progress=False)
+        fp.run(
+            _model,
+            fp.Langevin(step_size=0.1),
+            {"a": jnp.zeros(4), "w": jnp.zeros((5, 3))},
+            key=jax.random.key(0),
+            steps=1,
+            progress=False,
+        )
     with pytest.raises(ValueError, match=r"init: parameter 'a' has no leading particle axis"):
-        fp.run(_model, fp.Langevin(step_size=0.1), {"a": jnp.zeros(()), "w": jnp.zeros((5, 3))},
-               key=jax.random.key(0), steps=1, progress=False)
+        fp.run(
+            _model,
+            fp.Langevin(step_size=0.1),
+            {"a": jnp.zeros(()), "w": jnp.zeros((5, 3))},
+            key=jax.random.key(0),
+            steps=1,
+            progress=False,
+        )
 
 
 def test_non_differentiable_log_p_is_named():
@@ -79,15 +106,20 @@ def test_non_differentiable_log_p_is_named():
         return jnp.asarray(float(np.sum(np.asarray(theta))))  # leaves JAX: cannot be traced
 
     with pytest.raises((TypeError, ValueError), match=r"log_p"):
-        fp.run(bad, fp.Langevin(step_size=0.1), jnp.zeros((4, 2)), key=jax.random.key(0), steps=1,
-               progress=False)
+        fp.run(bad, fp.Langevin(step_size=0.1), jnp.zeros((4, 2)), key=jax.random.key(0), steps=1, progress=False)
 
     def integer_valued(theta):
         return jnp.sum(theta > 0).astype(jnp.int32)
 
     with pytest.raises(TypeError, match=r"log_p must return a floating-point scalar"):
-        fp.run(integer_valued, fp.Langevin(step_size=0.1), jnp.zeros((4, 2)), key=jax.random.key(0),
-               steps=1, progress=False)
+        fp.run(
+            integer_valued,
+            fp.Langevin(step_size=0.1),
+            jnp.zeros((4, 2)),
+            key=jax.random.key(0),
+            steps=1,
+            progress=False,
+        )
 
 
 def test_support_errors_name_the_argument():
@@ -116,6 +148,7 @@ def test_bad_stepper_and_key_are_named():
 def test_data_is_traced_not_baked_in():
     """A Target is a pytree whose leaves are the data: new data of the same shape reuse the
     compiled function (jit's cache does not grow)."""
+
     def lp(th, data):
         return jnp.sum(jst.norm.logpdf(data, th, 1.0))
 

@@ -5,6 +5,7 @@ Outside sources are named beside each check. Reference values are computed here
 independently of the code under test (textbook formulas written out, scipy.stats densities,
 scipy.integrate.quad, numpy linear algebra).
 """
+
 from __future__ import annotations
 
 import re
@@ -42,8 +43,7 @@ from flowpost.testing.references import (
 )
 from flowpost.testing.region import Region
 
-FEW = settings(max_examples=6, deadline=None, derandomize=True,
-               suppress_health_check=[HealthCheck.too_slow])
+FEW = settings(max_examples=6, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
 
 
 # ============================================================================ helpers
@@ -57,6 +57,7 @@ def _quad_mean_var(log_unnorm, coarse, to_param=lambda u: u, log_jacobian=lambda
     maximum (outside it the integrand is below e^-60 relative); quad then integrates over
     that finite window, split at the mode.
     """
+
     def log_g(u):
         with np.errstate(all="ignore"):
             v = log_unnorm(to_param(np.atleast_1d(u))) + log_jacobian(np.atleast_1d(u))
@@ -70,8 +71,10 @@ def _quad_mean_var(log_unnorm, coarse, to_param=lambda u: u, log_jacobian=lambda
 
     def integral(power):
         f = lambda u: to_param(u) ** power * np.exp(log_g(u)[0] - values[top])
-        return sum(scipy.integrate.quad(f, a, b, epsabs=0.0, epsrel=1e-10, limit=200)[0]
-                   for a, b in ((lo, coarse[top]), (coarse[top], hi)))
+        return sum(
+            scipy.integrate.quad(f, a, b, epsabs=0.0, epsrel=1e-10, limit=200)[0]
+            for a, b in ((lo, coarse[top]), (coarse[top], hi))
+        )
 
     z = integral(0)
     mean = integral(1) / z
@@ -82,19 +85,29 @@ def _scipy_log_unnorm(model, data):
     """log prior + log likelihood of a family written with scipy.stats (independent of the
     family's jax code), as a function of a theta dict."""
     if isinstance(model, NormalKnownVariance):
-        return lambda th: ss.norm.logpdf(th["mu"], model.prior_mean, model.prior_sd) + ss.norm.logpdf(
-            data["y"], th["mu"], model.noise_sd).sum()
+        return lambda th: (
+            ss.norm.logpdf(th["mu"], model.prior_mean, model.prior_sd)
+            + ss.norm.logpdf(data["y"], th["mu"], model.noise_sd).sum()
+        )
     if isinstance(model, BetaBinomial):
-        return lambda th: ss.beta.logpdf(th["p"], model.a, model.b) + ss.binom.logpmf(
-            data["successes"], data["trials"], th["p"]).sum()
+        return lambda th: (
+            ss.beta.logpdf(th["p"], model.a, model.b)
+            + ss.binom.logpmf(data["successes"], data["trials"], th["p"]).sum()
+        )
     if isinstance(model, GammaPoisson):
-        return lambda th: ss.gamma.logpdf(th["lam"], model.shape, scale=1 / model.rate) + \
-            ss.poisson.logpmf(data["counts"], th["lam"]).sum()
+        return lambda th: (
+            ss.gamma.logpdf(th["lam"], model.shape, scale=1 / model.rate)
+            + ss.poisson.logpmf(data["counts"], th["lam"]).sum()
+        )
     if isinstance(model, DirichletMultinomial):
-        return lambda th: ss.dirichlet.logpdf(th["probs"], model.alpha) + sum(
-            ss.multinomial.logpmf(c, c.sum(), th["probs"]) for c in np.atleast_2d(data["counts"]))
-    return lambda th: ss.multivariate_normal(model.prior_mean, model.prior_cov).logpdf(th["w"]) + \
-        ss.norm.logpdf(data["y"], data["X"] @ th["w"], model.noise_sd).sum()
+        return lambda th: (
+            ss.dirichlet.logpdf(th["probs"], model.alpha)
+            + sum(ss.multinomial.logpmf(c, c.sum(), th["probs"]) for c in np.atleast_2d(data["counts"]))
+        )
+    return lambda th: (
+        ss.multivariate_normal(model.prior_mean, model.prior_cov).logpdf(th["w"])
+        + ss.norm.logpdf(data["y"], data["X"] @ th["w"], model.noise_sd).sum()
+    )
 
 
 # ============================================================================ reference families
@@ -146,8 +159,11 @@ def test_beta_binomial_posterior(instance):
 
     # integrate over u = logit(p): p = 1 / (1 + exp(-u)), dp/du = p (1 - p)
     mean, var = _quad_mean_var(
-        log_unnorm, np.linspace(-40.0, 40.0, 4001), to_param=scipy.special.expit,
-        log_jacobian=lambda u: -np.logaddexp(0, -u) - np.logaddexp(0, u))
+        log_unnorm,
+        np.linspace(-40.0, 40.0, 4001),
+        to_param=scipy.special.expit,
+        log_jacobian=lambda u: -np.logaddexp(0, -u) - np.logaddexp(0, u),
+    )
     # tolerance 1e-7 relative: above the error of the numerical normalisation
     assert model.posterior_mean(data)[0] == pytest.approx(mean, rel=1e-7)
     assert model.posterior_cov(data)[0, 0] == pytest.approx(var, rel=1e-6)
@@ -168,12 +184,10 @@ def test_gamma_poisson_posterior(instance):
 
     def log_unnorm(lam):
         lam = np.asarray(lam, dtype=float)
-        return ss.gamma.logpdf(lam, alpha, scale=1 / beta) + ss.poisson.logpmf(
-            y[None, :], lam[:, None]).sum(1)
+        return ss.gamma.logpdf(lam, alpha, scale=1 / beta) + ss.poisson.logpmf(y[None, :], lam[:, None]).sum(1)
 
     # integrate over u = log(lam): d lam / du = lam
-    mean, var = _quad_mean_var(log_unnorm, np.linspace(-40.0, 10.0, 4001), to_param=np.exp,
-                               log_jacobian=lambda u: u)
+    mean, var = _quad_mean_var(log_unnorm, np.linspace(-40.0, 10.0, 4001), to_param=np.exp, log_jacobian=lambda u: u)
     # tolerance 1e-7 relative: above the error of the numerical normalisation
     assert model.posterior_mean(data)[0] == pytest.approx(mean, rel=1e-7)
     assert model.posterior_cov(data)[0, 0] == pytest.approx(var, rel=1e-6)
@@ -253,8 +267,9 @@ _FIXED_MODELS = [
     BetaBinomial(a=2.0, b=3.0),
     GammaPoisson(shape=3.0, rate=0.5),
     DirichletMultinomial(alpha=np.array([2.0, 3.0, 4.0])),
-    LinearRegressionKnownNoise(prior_mean=np.array([0.5, -1.0]),
-                               prior_cov=np.array([[1.0, 0.3], [0.3, 0.5]]), noise_sd=0.7),
+    LinearRegressionKnownNoise(
+        prior_mean=np.array([0.5, -1.0]), prior_cov=np.array([[1.0, 0.3], [0.3, 0.5]]), noise_sd=0.7
+    ),
 ]
 
 
@@ -298,8 +313,7 @@ def test_log_density_matches_scipy_prior_times_likelihood(model):
         pts64 = jax.tree.map(lambda *v: jnp.asarray(np.stack(v), jnp.float64), *thetas)
         ours = np.asarray(jax.jit(jax.vmap(model.log_density, in_axes=(0, None)))(pts64, data))
     ref = np.array([_scipy_log_unnorm(model, data)(th) for th in thetas])
-    np.testing.assert_allclose(ours - ours[0], ref - ref[0], rtol=1e-7,
-                               atol=1e-9 * max(1.0, np.abs(ref).max()))
+    np.testing.assert_allclose(ours - ours[0], ref - ref[0], rtol=1e-7, atol=1e-9 * max(1.0, np.abs(ref).max()))
 
 
 @pytest.mark.parametrize("model", _FIXED_MODELS, ids=lambda m: type(m).__name__)
@@ -355,8 +369,11 @@ def test_score_check_passes_on_reference_families(model):
     # round-off (Taylor expansion); measured errors are ~1e-9, the tolerance is 1e-6.
     data = _data_for(model)
     report = assert_score_matches(
-        model.log_density, data=data, sampler=_exact_posterior_sampler(model, data),
-        num_points=6, tolerance=1e-6,
+        model.log_density,
+        data=data,
+        sampler=_exact_posterior_sampler(model, data),
+        num_points=6,
+        tolerance=1e-6,
     )
     assert report.worst_error < 1e-6 and report.num_points == 6
 
@@ -474,7 +491,7 @@ def test_score_check_rejects_bad_arguments():
     with pytest.raises(ValueError, match="around, sampler: expected exactly one"):
         score_agreement(lambda t: -jnp.sum(t**2))
     with pytest.raises(ValueError, match="scalar"):
-        score_agreement(lambda t: -t**2, around=jnp.zeros(3))
+        score_agreement(lambda t: -(t**2), around=jnp.zeros(3))
     with pytest.raises(ValueError, match=r"data: expected .*\(exchangeable=True\); got None"):
         check_health(lambda t: -jnp.sum(t**2), around=jnp.zeros(3), exchangeable=True)
 
@@ -483,8 +500,9 @@ def test_score_check_rejects_bad_arguments():
 def test_health_report_passes_for_a_reference_family():
     model = _FIXED_MODELS[0]
     data = _data_for(model)
-    report = check_health(model.log_density, data=data,
-                          sampler=_exact_posterior_sampler(model, data), exchangeable=True)
+    report = check_health(
+        model.log_density, data=data, sampler=_exact_posterior_sampler(model, data), exchangeable=True
+    )
     assert report.passed, report.summary()
     assert set(report.results) == {"scalar", "finite", "jit", "vmap", "deterministic", "exchangeable"}
     report.assert_passed()
@@ -544,7 +562,7 @@ def test_health_catches_nan_on_part_of_the_region():
 def test_health_catches_jit_and_vmap_faults():
     def branchy(x):
         if x > 0:  # Python branch on a traced value: fails under jit
-            return -x**2
+            return -(x**2)
         return -2 * x**2
 
     with pytest.raises(AssertionError, match=r"fails under jax\.jit"):
@@ -587,8 +605,11 @@ def _old_perturbations(around, scale, num, key):
     leaves, treedef = jax.tree.flatten(around)
     out = []
     for _ in range(num):
-        out.append(jax.tree.unflatten(treedef, [
-            (np.asarray(b) + scale * rng.standard_normal(np.shape(b))).astype(np.float32) for b in leaves]))
+        out.append(
+            jax.tree.unflatten(
+                treedef, [(np.asarray(b) + scale * rng.standard_normal(np.shape(b))).astype(np.float32) for b in leaves]
+            )
+        )
     return out
 
 
@@ -604,8 +625,11 @@ def test_region_points_are_those_of_the_keywords():
             assert x.dtype == y.dtype and np.array_equal(x, y)
     # unset num_points takes the check's default; unset key is jax.random.key(0)
     assert len(Region.near(point).points(8)) == 8
-    for a, b in zip(Region.near(point, num_points=3).points(99),
-                    Region.near(point, num_points=3, key=jax.random.key(0)).points(99), strict=True):
+    for a, b in zip(
+        Region.near(point, num_points=3).points(99),
+        Region.near(point, num_points=3, key=jax.random.key(0)).points(99),
+        strict=True,
+    ):
         assert all(np.array_equal(x, y) for x, y in zip(jax.tree.leaves(a), jax.tree.leaves(b), strict=True))
     # drawn: sampler(k) for keys split from the region's key
     sampler = lambda k: {"w": jax.random.normal(k, (2,))}
@@ -679,15 +703,23 @@ def test_region_and_loose_keywords_are_not_both_given():
     point = jnp.zeros(2)
     log_p = lambda t: -jnp.sum(t**2)
     region = Region.near(point)
-    for check in (score_agreement, assert_score_matches, assert_finite_on_region,
-                  assert_vmap_matches_loop, check_health):
+    for check in (
+        score_agreement,
+        assert_score_matches,
+        assert_finite_on_region,
+        assert_vmap_matches_loop,
+        check_health,
+    ):
         with pytest.raises(TypeError, match=r"^region, around: expected either region= or the keywords"):
             check(log_p, region, around=point)
         with pytest.raises(TypeError, match=r"^region, num_points, key: expected either region="):
             check(log_p, region=region, num_points=3, key=jax.random.key(1))
         # a misspelt keyword is named, with the region keyword it resembles
-        with pytest.raises(TypeError, match=rf"^{check.__name__}: expected keywords .*'aroud' "
-                                            r"\(did you mean 'around'\?\)"):
+        with pytest.raises(
+            TypeError,
+            match=rf"^{check.__name__}: expected keywords .*'aroud' "
+            r"\(did you mean 'around'\?\)",
+        ):
             check(log_p, aroud=point)
         with pytest.raises(TypeError, match=r"^region: expected a Region .*; got the class Region"):
             check(log_p, Region)

@@ -79,10 +79,13 @@ Wrong shapes or non-real dtypes raise ``ValueError`` / ``TypeError``.
 from __future__ import annotations
 
 import numbers
+from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import fft as _sfft, special as _sspecial, stats as _sstats
+from scipy import fft as _sfft
+from scipy import special as _sspecial
+from scipy import stats as _sstats
 
 __all__ = [
     "MIN_DRAWS_PER_CHAIN",
@@ -135,7 +138,7 @@ def _usable(x: np.ndarray) -> np.ndarray:
     """Boolean ``(params,)``: enough draws per chain and all draws finite."""
     if x.shape[1] < MIN_DRAWS_PER_CHAIN:
         return np.zeros(x.shape[2], dtype=bool)
-    return np.isfinite(x).all(axis=(0, 1))
+    return np.asarray(np.isfinite(x).all(axis=(0, 1)))
 
 
 def _finish(out: np.ndarray, scalar: bool) -> float | np.ndarray:
@@ -255,6 +258,26 @@ def _classic_rhat(x: np.ndarray) -> np.ndarray:
     return np.where(all_equal, np.nan, rhat)
 
 
+def _rank_normalised_rhat(halves: np.ndarray) -> np.ndarray:
+    """The larger of the bulk and the folded R-hat of finite split chains, shape ``(P,)``."""
+    bulk = _classic_rhat(_normal_scores(halves))
+    median = np.median(halves, axis=(0, 1), keepdims=True)
+    folded = _classic_rhat(_normal_scores(np.abs(halves - median)))
+    # fmax: a nan from one version (e.g. folded draws all equal) yields the other.
+    return np.fmax(bulk, folded)
+
+
+def _split_rhat_with(draws: ArrayLike, rhat_of: Callable[[np.ndarray], np.ndarray]) -> float | np.ndarray:
+    """``rhat_of`` on the split chains of the usable parameters of ``draws`` (enough finite
+    draws, see :func:`_usable`); ``nan`` for the others."""
+    x, scalar = _as_draws(draws, allow_1d=False)
+    out = np.full(x.shape[2], np.nan)
+    ok = _usable(x)
+    if ok.any():
+        out[ok] = rhat_of(_split_halves(x[:, :, ok]))
+    return _finish(out, scalar)
+
+
 def plain_split_rhat(draws: ArrayLike) -> float | np.ndarray:
     """Split R-hat on the draws as they are: no rank normalisation, no folding.
 
@@ -271,16 +294,10 @@ def plain_split_rhat(draws: ArrayLike) -> float | np.ndarray:
     Returns
     -------
     float or numpy.ndarray
-        A float for 2-D input, an array of shape ``(params,)`` for 3-D input.
-        ``nan`` where a chain has fewer than 4 draws, a draw is non-finite, or
-        all draws are equal; ``inf`` where every chain is constant but they differ.
+        As for :func:`split_rhat`: a float for 2-D input, else one value per parameter
+        (``nan`` and ``inf`` in the same degenerate cases).
     """
-    x, scalar = _as_draws(draws, allow_1d=False)
-    out = np.full(x.shape[2], np.nan)
-    ok = _usable(x)
-    if ok.any():
-        out[ok] = _classic_rhat(_split_halves(x[:, :, ok]))
-    return _finish(out, scalar)
+    return _split_rhat_with(draws, _classic_rhat)
 
 
 def rank_normalise(draws: ArrayLike) -> np.ndarray:
@@ -341,17 +358,7 @@ def split_rhat(draws: ArrayLike) -> float | np.ndarray:
         ``nan`` where a chain has fewer than 4 draws, a draw is non-finite, or
         all draws are equal; ``inf`` where every chain is constant but they differ.
     """
-    x, scalar = _as_draws(draws, allow_1d=False)
-    out = np.full(x.shape[2], np.nan)
-    ok = _usable(x)
-    if ok.any():
-        halves = _split_halves(x[:, :, ok])
-        bulk = _classic_rhat(_normal_scores(halves))
-        median = np.median(halves, axis=(0, 1), keepdims=True)
-        folded = _classic_rhat(_normal_scores(np.abs(halves - median)))
-        # fmax: a nan from one version (e.g. folded draws all equal) yields the other.
-        out[ok] = np.fmax(bulk, folded)
-    return _finish(out, scalar)
+    return _split_rhat_with(draws, _rank_normalised_rhat)
 
 
 # ---------------------------------------------------------------------------

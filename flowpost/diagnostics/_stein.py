@@ -77,8 +77,8 @@ import jax.numpy as jnp
 from jax import lax
 
 from ..numerics import DEFAULT_BLOCK, IMQ, RadialKernel, map_row_blocks, pairwise_sqdist
-from ..numerics._kernels import _as_points, _resolve_scale
-from ..numerics._pairwise import _check_block
+from ..numerics._kernels import as_points, resolve_scale
+from ..numerics._pairwise import check_block
 
 Array = jax.Array
 ArrayLike = Any
@@ -108,7 +108,7 @@ def stein_kernel(
     if not isinstance(kernel, RadialKernel):
         raise TypeError(f"`kernel` must be a kernel config such as IMQ(); got {kernel!r}")
     dtype = jnp.result_type(x, y, sx, sy)
-    s = kernel._resolve(scale, dtype)
+    s = kernel.resolve(scale, dtype)
     d = x.shape[-1]
     diff = x - y
     r2 = jnp.sum(diff * diff, axis=-1)
@@ -119,12 +119,10 @@ def stein_kernel(
 
 
 def _check_inputs(x: ArrayLike, scores: ArrayLike) -> tuple[Array, Array]:
-    x = _as_points("x", x)
-    scores = _as_points("scores", scores)
+    x = as_points("x", x)
+    scores = as_points("scores", scores)
     if scores.shape != x.shape:
-        raise ValueError(
-            f"`scores` must have the same shape as `x` {x.shape}; got {scores.shape}"
-        )
+        raise ValueError(f"`scores` must have the same shape as `x` {x.shape}; got {scores.shape}")
     return x, scores
 
 
@@ -171,7 +169,7 @@ def squared_stein_discrepancy(
     Scalar array (dtype of ``x``), ``>= 0`` up to rounding (clipped at 0).
     """
     x, scores = _check_inputs(x, scores)
-    _check_block(block)
+    check_block(block)
     n = x.shape[0]
     if subset is not None:
         if isinstance(subset, bool) or not isinstance(subset, int) or subset < 1:
@@ -182,7 +180,7 @@ def squared_stein_discrepancy(
             idx = jax.random.choice(key, n, (subset,), replace=False)
             x, scores = x[idx], scores[idx]
             n = subset
-    s = _resolve_scale(kernel, x, scale)
+    s = resolve_scale(kernel, x, scale)
     d = x.shape[1]
     shift = lax.stop_gradient(jnp.mean(x, axis=0))
     xc = x - shift
@@ -223,8 +221,4 @@ def stein_discrepancy(
     :func:`squared_stein_discrepancy` for the arguments.  Computed with the
     blocked primitive, memory ``O(block * N)``.
     """
-    return jnp.sqrt(
-        squared_stein_discrepancy(
-            x, scores, kernel, block=block, subset=subset, key=key, scale=scale
-        )
-    )
+    return jnp.sqrt(squared_stein_discrepancy(x, scores, kernel, block=block, subset=subset, key=key, scale=scale))

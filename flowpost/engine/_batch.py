@@ -13,11 +13,13 @@ A single ``key`` is shared by all members (common random numbers: the members th
 only by their step sizes, which sharpens a comparison between them); give a batch of keys
 (``jax.random.split(key, M)``) for independent members.
 """
+
 from __future__ import annotations
 
 import copy
 import time
-from typing import Any, Callable, Sequence
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -25,10 +27,18 @@ import numpy as np
 
 from .._validate import fail
 from ..model._target import Target, as_target
-from ..steppers.base import check_stepper
+from ..steppers.base import Stepper, check_stepper
 from ._controllers import Controller, as_controller
-from ._driver import (Carry, _check_run_args, _check_start, _tape_index, _window_body, check_step_contract,
-                      resolve_controller, START_SALT)
+from ._driver import (
+    START_SALT,
+    Carry,
+    check_run_args,
+    check_start,
+    check_step_contract,
+    resolve_controller,
+    taped_subset,
+    window_body,
+)
 from ._history import History
 from ._monitor import Monitor, chain_figures
 from ._result import Result
@@ -36,14 +46,14 @@ from ._result import Result
 __all__ = ["sweep"]
 
 
-def _batch_body(stepper, controllers, target, carry, keys, t0, n_active, tape_index, length):
+def batch_body(stepper, controllers, target, carry, keys, t0, n_active, tape_index, length):
     def one(ctrl, c, k, t, n):
-        return _window_body(stepper, ctrl, target, c, k, t, n, tape_index, length)
+        return window_body(stepper, ctrl, target, c, k, t, n, tape_index, length)
 
     return jax.vmap(one)(controllers, carry, keys, t0, n_active)
 
 
-_batch_window = jax.jit(_batch_body, static_argnames=("length",))
+_batch_window = jax.jit(batch_body, static_argnames=("length",))
 
 
 @jax.jit
@@ -69,15 +79,15 @@ def _members_of(step_size: Any, stepper, on_blowup: str, key: jax.Array) -> tupl
         items = list(step_size)
         if not items:
             raise fail("step_size", "a non-empty sequence of step sizes or controllers", step_size)
-        controllers = [resolve_controller(stepper, as_controller(h, f"step_size[{i}]"), on_blowup)
-                       for i, h in enumerate(items)]
+        controllers = [
+            resolve_controller(stepper, as_controller(h, f"step_size[{i}]"), on_blowup) for i, h in enumerate(items)
+        ]
     else:
         controllers = [resolve_controller(stepper, step_size, on_blowup)]
     m_k = key.shape[0] if batched_k else None
     m = len(controllers)
     if not batched_h and m_k is None:
-        raise fail("step_size / key", "a batch: a sequence of step sizes and/or a batch of keys", step_size,
-                   TypeError)
+        raise fail("step_size / key", "a batch: a sequence of step sizes and/or a batch of keys", step_size, TypeError)
     if batched_h and m_k is not None and m_k != m:
         raise fail("key", f"a batch of {m} keys, one per step size", key)
     if not batched_h:
@@ -92,8 +102,8 @@ def _members_of(step_size: Any, stepper, on_blowup: str, key: jax.Array) -> tupl
 
 def sweep(
     target: Target | Callable[..., Any],
-    stepper,
-    init,
+    stepper: Stepper,
+    init: Any,
     *,
     key: jax.Array,
     steps: int = 1000,
@@ -126,14 +136,14 @@ def sweep(
     check_stepper(stepper)
     if not isinstance(key, jax.Array):
         raise fail("key", "a JAX PRNG key or a batch of keys", key, TypeError)
-    steps, window = _check_run_args(steps, window, on_blowup, jax.random.key(0), None, 1, progress)
+    steps, window = check_run_args(steps, window, on_blowup, jax.random.key(0), None, 1, progress)
     if monitor is not None and not isinstance(monitor, Monitor):
         raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
     controllers, keys = _members_of(step_size, stepper, on_blowup, key)
     m = len(controllers)
     stacked = jax.tree_util.tree_map(lambda *a: jnp.stack([jnp.asarray(v) for v in a]), *controllers)
     bound, x0 = target.bind(init)
-    _check_start(bound, x0)
+    check_start(bound, x0)
     template = Monitor() if monitor is None else monitor
     monitors = [copy.deepcopy(template) for _ in range(m)]
 
@@ -141,7 +151,7 @@ def sweep(
     reductions = check_step_contract(stepper, controllers[0], bound, _member(carry, 0), keys[0])
     for mon in monitors:
         mon.open(bound, stepper, _member(carry, 0).state)
-    tape_index = _tape_index(keys[0], x0.shape[0], min(monitors[0].tape_particles, x0.shape[0]))
+    tape_index = taped_subset(keys[0], x0.shape[0], min(monitors[0].tape_particles, x0.shape[0]))
 
     histories = [History() for _ in range(m)]
     status = ["done"] * m
@@ -159,8 +169,10 @@ def sweep(
     try:
         while (active & (mstep < steps)).any():
             n = np.where(active, np.minimum(window, steps - mstep), 0)
-            new, stats, taped = _batch_window(stepper, stacked, bound, carry, keys, jnp.asarray(mstep, jnp.int32),
-                                              jnp.asarray(n, jnp.int32), tape_index, length=window)
+            t0, n_dev = jnp.asarray(mstep, jnp.int32), jnp.asarray(n, jnp.int32)
+            new, stats, taped = _batch_window(
+                stepper, stacked, bound, carry, keys, t0, n_dev, tape_index, length=window
+            )
             stats = jax.device_get(stats)
             taped = None if taped is None else np.asarray(taped)
             elapsed = time.perf_counter() - t_start
@@ -173,13 +185,23 @@ def sweep(
             records = {}
             for i in np.nonzero(n)[0]:
                 ni = int(n[i])
-                records[i] = monitors[i].read(bound, stepper, _member(host_states, int(i)),
-                                              {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
-                                              None if taped is None else taped[i, :ni], int(mstep[i]) + ni, elapsed,
-                                              flow_time=float(flow[i]), reductions=reductions, measured=measured[i],
-                                              defer_chains=True)
+                records[i] = monitors[i].read(
+                    bound,
+                    stepper,
+                    _member(host_states, int(i)),
+                    {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
+                    None if taped is None else taped[i, :ni],
+                    int(mstep[i]) + ni,
+                    elapsed,
+                    flow_time=float(flow[i]),
+                    reductions=reductions,
+                    measured=measured[i],
+                    defer_chains=True,
+                )
             # R-hat and ESS of every member's trails in one computation
-            ready = [(i, c) for i in records if (c := monitors[i].chains()) is not None and records[i]["n_nonfinite"] == 0]
+            ready = [
+                (i, c) for i in records if (c := monitors[i].chains()) is not None and records[i]["n_nonfinite"] == 0
+            ]
             for (i, _), figs in zip(ready, chain_figures([c for _, c in ready])):
                 records[i].update(figs)
             for i, rec in records.items():
@@ -189,15 +211,21 @@ def sweep(
                 if verdict.action == "rewind":
                     keep[i] = False
                     back = _member(good, int(i))
-                    event: dict[str, Any] = {"step": int(mstep[i]) + ni, "event": "rollback",
-                                             "reason": verdict.reason, "back_to": int(mstep[i])}
+                    event: dict[str, Any] = {
+                        "step": int(mstep[i]) + ni,
+                        "event": "rollback",
+                        "reason": verdict.reason,
+                        "back_to": int(mstep[i]),
+                    }
                     ctrl = _member(stacked, int(i))
                     smaller = ctrl.rewind(back.cstate)
                     if smaller is None:
                         histories[i].append(event)
                         status[i] = "blow-up"
-                        reasons[i] = (f"{verdict.reason}; returned the last good ensemble (step {int(mstep[i])}). "
-                                      "Try a smaller step_size or on_blowup='halve'.")
+                        reasons[i] = (
+                            f"{verdict.reason}; returned the last good ensemble (step {int(mstep[i])}). "
+                            "Try a smaller step_size or on_blowup='halve'."
+                        )
                         active[i] = False
                     else:
                         event["action"] = f"halved the step: {ctrl.describe(smaller)}"
@@ -214,7 +242,8 @@ def sweep(
                     active[i] = False
             mask = jnp.asarray(keep)
             carry = jax.tree_util.tree_map(
-                lambda a, b: jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, b), new, good)
+                lambda a, b, mask=mask: jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, b), new, good
+            )
             good = carry
     except KeyboardInterrupt:
         carry = good
@@ -229,10 +258,21 @@ def sweep(
         member = _member(carry, i)
         ctrl = _member(stacked, i)
         report = {**stepper.report(member.state), **ctrl.report(member.cstate)}
-        out.append(Result(target=bound, state=member.state, history=histories[i], status=status[i],
-                          reason=reasons[i], steps=int(mstep[i]), elapsed=total, stepper=stepper,
-                          report=report, events=events[i],
-                          controller_description=ctrl.describe(member.cstate)))
+        out.append(
+            Result(
+                target=bound,
+                state=member.state,
+                history=histories[i],
+                status=status[i],
+                reason=reasons[i],
+                steps=int(mstep[i]),
+                elapsed=total,
+                stepper=stepper,
+                report=report,
+                events=events[i],
+                controller_description=ctrl.describe(member.cstate),
+            )
+        )
     return out
 
 

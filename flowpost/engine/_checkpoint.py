@@ -14,6 +14,7 @@ that differ (``stepper.friction: checkpoint 1.0, this run 2.0``).
 
 Files are written to a unique temporary name in the target folder and renamed into place.
 """
+
 from __future__ import annotations
 
 import contextlib
@@ -22,13 +23,17 @@ import hashlib
 import json
 import os
 import tempfile
-from typing import Any
+from collections.abc import Callable
+from typing import TYPE_CHECKING, Any, BinaryIO
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 from ._history import History
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = [
     "atomic_write",
@@ -104,20 +109,23 @@ def differences(old: Any, new: Any, path: str) -> list[str]:
     return out
 
 
-def target_fingerprint(target) -> dict:
+def target_fingerprint(target: Target) -> dict[str, Any]:
     """The target's layout (names, shapes, supports), its terms and a hash of its data."""
-    layout = target.layout
+    layout = target.bound_layout()
     slots = [{"name": s.name, "shape": list(s.shape), "support": s.support.describe()} for s in layout.slots]
     data = [fingerprint(leaf) for leaf in jax.tree_util.tree_leaves(target.data)]
-    return {"parameters": {"sequence": [{"dict": s} for s in slots]},
-            "terms": {"sequence": list(target.term_names)}, "data": {"sequence": data}}
+    return {
+        "parameters": {"sequence": [{"dict": s} for s in slots]},
+        "terms": {"sequence": list(target.term_names)},
+        "data": {"sequence": data},
+    }
 
 
 def _shapes(tree) -> list:
     return [[str(np.asarray(a).dtype), list(np.shape(a))] for a in jax.tree_util.tree_leaves(tree)]
 
 
-def atomic_write(path: str | os.PathLike, write) -> None:
+def atomic_write(path: str | os.PathLike, write: Callable[[BinaryIO], object]) -> None:
     """Call ``write(file_object)`` on a unique temporary file in ``path``'s folder, then rename
     it to ``path`` (the old file stays whole until the rename)."""
     path = os.fspath(path)
@@ -140,14 +148,31 @@ def _key_parts(key):
     return (np.asarray(jax.random.key_data(key)) if typed else np.asarray(key)), typed
 
 
-def save_checkpoint(path, carry, step: int, key, history: History, identity: dict, window: int) -> None:
+def save_checkpoint(
+    path: str | os.PathLike,
+    carry: Any,
+    step: int,
+    key: jax.Array,
+    history: History,
+    identity: dict[str, Any],
+    window: int,
+) -> None:
     """Write the carry and everything needed to continue (module docstring)."""
     leaves = jax.tree_util.tree_leaves(carry)
     kdata, typed = _key_parts(key)
-    meta = {"format": CHECKPOINT_FORMAT, "version": CHECKPOINT_VERSION, "step": int(step),
-            "typed_key": typed, "window": int(window), "history": history.to_json(),
-            "identity": identity, "shapes": _shapes(carry), "n_leaves": len(leaves)}
-    arrays = {f"leaf_{i}": np.asarray(leaf) for i, leaf in enumerate(leaves)}
+    meta = {
+        "format": CHECKPOINT_FORMAT,
+        "version": CHECKPOINT_VERSION,
+        "step": int(step),
+        "typed_key": typed,
+        "window": int(window),
+        "history": history.to_json(),
+        "identity": identity,
+        "shapes": _shapes(carry),
+        "n_leaves": len(leaves),
+    }
+    # Any: numpy's stub would match the unpacked arrays against savez's allow_pickle: bool
+    arrays: dict[str, Any] = {f"leaf_{i}": np.asarray(leaf) for i, leaf in enumerate(leaves)}
 
     def write(fh):
         np.savez(fh, meta=np.array(json.dumps(meta)), key=kdata, **arrays)
@@ -155,7 +180,9 @@ def save_checkpoint(path, carry, step: int, key, history: History, identity: dic
     atomic_write(path, write)
 
 
-def load_checkpoint(path, carry_like, identity: dict):
+def load_checkpoint(
+    path: str | os.PathLike, carry_like: Any, identity: dict[str, Any]
+) -> tuple[Any, int, jax.Array, History]:
     """Read a checkpoint for a run whose carry looks like ``carry_like`` and whose
     fingerprints are ``identity``; refuse a mismatch naming what differs."""
     try:
@@ -179,10 +206,14 @@ def load_checkpoint(path, carry_like, identity: dict):
     if meta["shapes"] != like_shapes:
         diffs.append(f"state: checkpoint leaves {meta['shapes']}, this run {like_shapes}")
     if diffs:
-        raise ValueError("resume: expected a checkpoint of this run's stepper, controller, target and "
-                         "ensemble shape; got one that differs in " + "; ".join(diffs[:8])
-                         + (f" (and {len(diffs) - 8} more)" if len(diffs) > 8 else ""))
+        raise ValueError(
+            "resume: expected a checkpoint of this run's stepper, controller, target and "
+            "ensemble shape; got one that differs in "
+            + "; ".join(diffs[:8])
+            + (f" (and {len(diffs) - 8} more)" if len(diffs) > 8 else "")
+        )
     carry = jax.tree_util.tree_unflatten(
-        treedef, [jnp.asarray(leaf, dtype=a.dtype) for leaf, a in zip(leaves, like_leaves)])
+        treedef, [jnp.asarray(leaf, dtype=a.dtype) for leaf, a in zip(leaves, like_leaves)]
+    )
     key = jax.random.wrap_key_data(jnp.asarray(kdata)) if meta["typed_key"] else jnp.asarray(kdata)
     return carry, int(meta["step"]), key, History.from_json(meta["history"])

@@ -34,6 +34,7 @@ Controllers
 :class:`Schedule` ``fn``
     ``h = fn(t)`` for a user function of the step (written with ``jax.numpy``).
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
@@ -54,13 +55,13 @@ class Controller:
 
     requires: ClassVar[tuple[str, ...]] = ()
 
-    def start(self, dtype) -> Any:  # pragma: no cover - abstract
+    def start(self, dtype: Any) -> Any:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def step_size(self, cstate: Any, t: jax.Array) -> jax.Array:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def update(self, cstate: Any, t: jax.Array, stats: dict) -> Any:
+    def update(self, cstate: Any, t: jax.Array, stats: dict[str, Any]) -> Any:
         return cstate
 
     def rewind(self, cstate: Any) -> Any | None:
@@ -69,11 +70,11 @@ class Controller:
     def describe(self, cstate: Any) -> str:
         return type(self).__name__
 
-    def report(self, cstate: Any) -> dict:
+    def report(self, cstate: Any) -> dict[str, Any]:
         return {}
 
 
-def _scalar(value: Any, dtype) -> jax.Array:
+def _scalar(value: Any, dtype: Any) -> jax.Array:
     return jnp.asarray(value, dtype)
 
 
@@ -89,19 +90,19 @@ class Constant(Controller):
 
     h: float
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         object.__setattr__(self, "h", positive("step_size", self.h))
 
-    def start(self, dtype):
+    def start(self, dtype: Any) -> dict[str, Any]:
         return {"h": _scalar(self.h, dtype)}
 
-    def step_size(self, cstate, t):
+    def step_size(self, cstate: dict[str, Any], t: jax.Array) -> jax.Array:
         return cstate["h"]
 
-    def describe(self, cstate):
+    def describe(self, cstate: dict[str, Any]) -> str:
         return f"step_size {float(np.asarray(cstate['h'])):.6g}"
 
-    def report(self, cstate):
+    def report(self, cstate: dict[str, Any]) -> dict[str, Any]:
         return {"step_size": float(np.asarray(cstate["h"]))}
 
 
@@ -116,36 +117,35 @@ class Halving(Controller):
     inner: Controller
     max_halvings: int = 10
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if not isinstance(self.inner, Controller):
             raise fail("inner", "a step-size controller", self.inner, TypeError)
         object.__setattr__(self, "max_halvings", integer("max_halvings", self.max_halvings, minimum=1))
 
     @property
-    def requires(self):  # type: ignore[override]
+    def requires(self) -> tuple[str, ...]:  # type: ignore[override]
         return self.inner.requires
 
-    def start(self, dtype):
-        return {"inner": self.inner.start(dtype), "scale": _scalar(1.0, dtype),
-                "halvings": jnp.zeros((), jnp.int32)}
+    def start(self, dtype: Any) -> dict[str, Any]:
+        return {"inner": self.inner.start(dtype), "scale": _scalar(1.0, dtype), "halvings": jnp.zeros((), jnp.int32)}
 
-    def step_size(self, cstate, t):
+    def step_size(self, cstate: dict[str, Any], t: jax.Array) -> jax.Array:
         return cstate["scale"] * self.inner.step_size(cstate["inner"], t)
 
-    def update(self, cstate, t, stats):
+    def update(self, cstate: dict[str, Any], t: jax.Array, stats: dict[str, Any]) -> dict[str, Any]:
         return {**cstate, "inner": self.inner.update(cstate["inner"], t, stats)}
 
-    def rewind(self, cstate):
+    def rewind(self, cstate: dict[str, Any]) -> dict[str, Any] | None:
         done = int(np.asarray(cstate["halvings"]))
         if done >= int(self.max_halvings):
             return None
         return {**cstate, "scale": cstate["scale"] / 2, "halvings": cstate["halvings"] + 1}
 
-    def describe(self, cstate):
+    def describe(self, cstate: dict[str, Any]) -> str:
         k = int(np.asarray(cstate["halvings"]))
         return f"{self.inner.describe(cstate['inner'])} x 2^-{k}" if k else self.inner.describe(cstate["inner"])
 
-    def report(self, cstate):
+    def report(self, cstate: dict[str, Any]) -> dict[str, Any]:
         rep = dict(self.inner.report(cstate["inner"]))
         scale = float(np.asarray(cstate["scale"]))
         if "step_size" in rep:
@@ -190,19 +190,19 @@ class AcceptanceTarget(Controller):
 
     requires: ClassVar[tuple[str, ...]] = ("accept",)
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         object.__setattr__(self, "h", positive("step_size", self.h))
         object.__setattr__(self, "accept", open_unit("target_accept", self.accept))
         object.__setattr__(self, "adapt_steps", integer("tune_steps", self.adapt_steps, minimum=0))
         object.__setattr__(self, "gain", positive("tune_gain", self.gain))
 
-    def start(self, dtype):
+    def start(self, dtype: Any) -> dict[str, Any]:
         return {"log_h": jnp.log(_scalar(self.h, dtype))}
 
-    def step_size(self, cstate, t):
+    def step_size(self, cstate: dict[str, Any], t: jax.Array) -> jax.Array:
         return jnp.exp(cstate["log_h"])
 
-    def update(self, cstate, t, stats):
+    def update(self, cstate: dict[str, Any], t: jax.Array, stats: dict[str, Any]) -> dict[str, Any]:
         log_h = cstate["log_h"]
         dtype = log_h.dtype
         rate = jnp.asarray(self.gain, dtype) * (t + 1).astype(dtype) ** -0.6
@@ -210,10 +210,10 @@ class AcceptanceTarget(Controller):
         moved = log_h + rate * (jnp.where(jnp.isfinite(a), a, 0.0) - jnp.asarray(self.accept, dtype))
         return {"log_h": jnp.where(t < self.adapt_steps, moved, log_h)}
 
-    def describe(self, cstate):
+    def describe(self, cstate: dict[str, Any]) -> str:
         return f"step_size {float(np.exp(np.asarray(cstate['log_h']))):.6g} (acceptance targeting)"
 
-    def report(self, cstate):
+    def report(self, cstate: dict[str, Any]) -> dict[str, Any]:
         return {"tuned_step_size": float(np.exp(np.asarray(cstate["log_h"])))}
 
 
@@ -226,19 +226,19 @@ class Schedule(Controller):
 
     fn: Callable[[jax.Array], jax.Array] = static()
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         callable_value("fn", self.fn, "a function of the step t returning the step size")
 
-    def start(self, dtype):
+    def start(self, dtype: Any) -> dict[str, Any]:
         out = jax.eval_shape(self.fn, jax.ShapeDtypeStruct((), jnp.int32))
         if getattr(out, "shape", None) != ():
             raise fail("fn", "a function returning a scalar step size", out, TypeError)
         return {"dtype_probe": jnp.zeros((), dtype)}
 
-    def step_size(self, cstate, t):
+    def step_size(self, cstate: dict[str, Any], t: jax.Array) -> jax.Array:
         return jnp.asarray(self.fn(t), cstate["dtype_probe"].dtype)
 
-    def describe(self, cstate):
+    def describe(self, cstate: dict[str, Any]) -> str:
         return f"scheduled step ({getattr(self.fn, '__qualname__', type(self.fn).__name__)})"
 
 
@@ -249,6 +249,10 @@ def as_controller(value: Any, name: str = "step_size") -> Controller:
     if isinstance(value, type) and issubclass(value, Controller):
         raise fail(name, "a controller instance or a positive number", value, TypeError)
     if callable(value) and not isinstance(value, (int, float)):
-        raise fail(name, "a positive number or a controller (wrap a function of the step in "
-                         "flowpost.Schedule)", value, TypeError)
+        raise fail(
+            name,
+            "a positive number or a controller (wrap a function of the step in flowpost.Schedule)",
+            value,
+            TypeError,
+        )
     return Constant(positive(name, value))

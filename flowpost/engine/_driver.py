@@ -16,12 +16,14 @@ to the last good window when the monitor reports a blow-up (the controller may t
 smaller step: :class:`~flowpost.Halving`). A ``KeyboardInterrupt`` returns
 the last completed window, marked as interrupted.
 """
+
 from __future__ import annotations
 
 import os
 import time
+from collections.abc import Callable
 from functools import partial
-from typing import Any, Callable, NamedTuple
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -29,14 +31,14 @@ import numpy as np
 
 from .._validate import choice, fail, integer, non_negative
 from ..model._target import Target, as_target
-from ..steppers.base import check_stats, check_stepper
+from ..steppers.base import Stepper, check_stats, check_stepper
 from ._checkpoint import fingerprint, load_checkpoint, save_checkpoint, target_fingerprint
 from ._controllers import Controller, Halving, as_controller
 from ._history import History
 from ._monitor import Monitor
 from ._result import Result
 
-__all__ = ["run", "evolve", "Carry", "resolve_controller", "DRIVER_REDUCTIONS"]
+__all__ = ["DRIVER_REDUCTIONS", "Carry", "evolve", "resolve_controller", "run"]
 
 START_SALT = 0x7FFFFFFF  # the start key is fold_in(key, START_SALT); step t uses fold_in(key, t)
 TAPE_SALT = 0x7FFFFFFE  # the taped particles are a random subset drawn with fold_in(key, TAPE_SALT)
@@ -61,7 +63,7 @@ def _one_step(stepper, controller, target, carry: Carry, key, t):
     return Carry(new, cstate, carry.flow_time + h), stats
 
 
-def _window_body(stepper, controller, target, carry, key, t0, n_active, tape_index, length):
+def window_body(stepper, controller, target, carry, key, t0, n_active, tape_index, length):
     def body(c, i):
         t = t0 + i
 
@@ -84,7 +86,7 @@ def _window_body(stepper, controller, target, carry, key, t0, n_active, tape_ind
     return carry, stats, taped
 
 
-_window = jax.jit(_window_body, static_argnames=("length",))
+_window = jax.jit(window_body, static_argnames=("length",))
 
 
 @jax.jit
@@ -98,14 +100,14 @@ def _value_and_score(target, x):
     return target.value_and_score(x)
 
 
-def _check_start(target: Target, x: jax.Array) -> None:
+def check_start(target: Target, x: jax.Array) -> None:
     logp, score = _value_and_score(target, x)
     logp, score = np.asarray(logp), np.asarray(score)
     bad_lp = ~np.isfinite(logp)
     bad_sc = ~np.isfinite(score)
     bad = bad_lp | bad_sc.any(axis=1)
     if bad.any():
-        coords = target.layout.coordinate_names()
+        coords = target.bound_layout().coordinate_names()
         slots = {c: c.split("[")[0] for c in coords}
         params = sorted({slots[coords[j]] for j in np.nonzero(bad_sc.any(axis=0))[0]})
         what = []
@@ -121,7 +123,7 @@ def _check_start(target: Target, x: jax.Array) -> None:
         )
 
 
-def resolve_controller(stepper, step_size: Any, on_blowup: str) -> Controller:
+def resolve_controller(stepper: Stepper, step_size: Any, on_blowup: str) -> Controller:
     """The run's controller: ``step_size`` (a number or a controller) when given, else the
     stepper's default; wrapped in :class:`Halving` for ``on_blowup="halve"``."""
     controller = stepper.default_controller() if step_size is None else as_controller(step_size)
@@ -133,6 +135,7 @@ def resolve_controller(stepper, step_size: Any, on_blowup: str) -> Controller:
 def check_step_contract(stepper, controller: Controller, target: Target, carry: Carry, key) -> dict[str, str]:
     """Trace one step (no compilation) to check the stats against the declarations and the
     controller's needs; returns the window's reductions."""
+
     def bare_step(carry, key):
         h = jnp.asarray(controller.step_size(carry.cstate, jnp.zeros((), jnp.int32)), carry.state.x.dtype)
         return stepper.advance(target, carry.state, key, h)[1]
@@ -152,7 +155,7 @@ def check_step_contract(stepper, controller: Controller, target: Target, carry: 
     return {**stepper.reductions, **DRIVER_REDUCTIONS}
 
 
-def _check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress):
+def check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress):
     steps = integer("steps", steps, minimum=0)
     window = integer("window", window, minimum=1)
     choice("on_blowup", on_blowup, ("stop", "halve"))
@@ -175,7 +178,7 @@ def _check_key(key: jax.Array, name: str = "key") -> None:
     raise fail(name, "one JAX PRNG key such as jax.random.key(0)", key, TypeError)
 
 
-def _tape_index(key, n: int, m: int) -> jax.Array:
+def taped_subset(key, n: int, m: int) -> jax.Array:
     """A fixed random subset of ``m`` of the ``n`` particles, drawn from the run's key."""
     if m <= 0:
         return jnp.zeros((0,), jnp.int32)
@@ -184,14 +187,17 @@ def _tape_index(key, n: int, m: int) -> jax.Array:
 
 def identity_of(stepper, controller, target) -> dict:
     """The fingerprints a checkpoint must match."""
-    return {"stepper": fingerprint(stepper), "controller": fingerprint(controller),
-            "target": target_fingerprint(target)}
+    return {
+        "stepper": fingerprint(stepper),
+        "controller": fingerprint(controller),
+        "target": target_fingerprint(target),
+    }
 
 
 def run(
     target: Target | Callable[..., Any],
-    stepper,
-    init,
+    stepper: Stepper,
+    init: Any,
     *,
     key: jax.Array,
     steps: int = 1000,
@@ -252,13 +258,13 @@ def run(
     """
     target = as_target(target)
     check_stepper(stepper)
-    steps, window = _check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress)
+    steps, window = check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress)
     _check_key(key)
     if monitor is not None and not isinstance(monitor, Monitor):
         raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
     controller = resolve_controller(stepper, step_size, on_blowup)
     bound, x0 = target.bind(init)
-    _check_start(bound, x0)
+    check_start(bound, x0)
     monitor = Monitor() if monitor is None else monitor
 
     carry = _start(stepper, controller, bound, x0, key)
@@ -269,7 +275,7 @@ def run(
     if resume is not None:
         carry, step, key, history = load_checkpoint(resume, carry, identity)
     monitor.open(bound, stepper, carry.state)
-    tape_index = _tape_index(key, x0.shape[0], min(monitor.tape_particles, x0.shape[0]))
+    tape_index = taped_subset(key, x0.shape[0], min(monitor.tape_particles, x0.shape[0]))
 
     good, good_step = carry, step
     status, reason = "done", f"step budget reached ({steps} steps)"
@@ -284,18 +290,31 @@ def run(
     try:
         while step < steps:
             n = min(window, steps - step)
-            new, stats, taped = _window(stepper, controller, bound, carry, key, jnp.asarray(step, jnp.int32),
-                                        jnp.asarray(n, jnp.int32), tape_index, length=window)
+            t0, n_dev = jnp.asarray(step, jnp.int32), jnp.asarray(n, jnp.int32)
+            new, stats, taped = _window(stepper, controller, bound, carry, key, t0, n_dev, tape_index, length=window)
             stats = {k: np.asarray(v)[:n] for k, v in jax.device_get(stats).items()}
             taped = None if taped is None else np.asarray(taped)[:n]
             elapsed = time.perf_counter() - t_start
-            record = monitor.read(bound, stepper, new.state, stats, taped, step + n, elapsed,
-                                  flow_time=float(new.flow_time), reductions=reductions)
+            record = monitor.read(
+                bound,
+                stepper,
+                new.state,
+                stats,
+                taped,
+                step + n,
+                elapsed,
+                flow_time=float(new.flow_time),
+                reductions=reductions,
+            )
             history.append(record)
             verdict = monitor.judge(history)
             if verdict.action == "rewind":
-                event: dict[str, Any] = {"step": int(step + n), "event": "rollback", "reason": verdict.reason,
-                                         "back_to": int(good_step)}
+                event: dict[str, Any] = {
+                    "step": int(step + n),
+                    "event": "rollback",
+                    "reason": verdict.reason,
+                    "back_to": int(good_step),
+                }
                 carry, step = good, good_step
                 smaller = controller.rewind(carry.cstate)
                 if smaller is not None:
@@ -308,9 +327,11 @@ def run(
                     continue
                 history.append(event)
                 status = "blow-up"
-                reason = (f"{verdict.reason}; returned the last good ensemble (step {good_step}). "
-                          "Try a smaller step_size, on_blowup='halve', or an implicit stepper "
-                          "(ImplicitLangevin, JKO).")
+                reason = (
+                    f"{verdict.reason}; returned the last good ensemble (step {good_step}). "
+                    "Try a smaller step_size, on_blowup='halve', or an implicit stepper "
+                    "(ImplicitLangevin, JKO)."
+                )
                 break
             carry, step = new, step + n
             good, good_step = carry, step
@@ -350,8 +371,9 @@ def run(
     )
 
 
-def evolve(stepper, target: Target, x: jax.Array, key: jax.Array, steps: int,
-           controller: Controller | None = None):
+def evolve(
+    stepper: Stepper, target: Target, x: jax.Array, key: jax.Array, steps: int, controller: Controller | None = None
+) -> Any:
     """Start ``stepper`` at the unconstrained ensemble ``x`` on a *bound* target and take
     ``steps`` steps, all inside one traced function: no monitor, no Python between steps.
 

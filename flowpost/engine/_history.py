@@ -4,6 +4,7 @@ A record is a flat dict of numbers and small arrays (for example ``"step"``,
 ``"mean_logp"``, ``"centre"`` of shape ``(d,)``) plus, for events, strings. :class:`History`
 keeps them in order and converts them to plain arrays or a text table.
 """
+
 from __future__ import annotations
 
 from collections.abc import Iterator
@@ -46,6 +47,22 @@ class History:
     def last(self) -> dict[str, Any] | None:
         return self.records[-1] if self.records else None
 
+    @property
+    def last_record(self) -> dict[str, Any]:
+        """The latest window record (event records such as roll-backs are skipped)."""
+        for r in reversed(self.records):
+            if "event" not in r:
+                return r
+        raise LookupError("history: expected at least one window record; got none")
+
+    def windows(self) -> list[dict[str, Any]]:
+        """The window records, in order, without the events."""
+        return [r for r in self.records if "event" not in r]
+
+    def events(self) -> list[dict[str, Any]]:
+        """The event records (roll-backs and their remedies), in order."""
+        return [r for r in self.records if "event" in r]
+
     def keys(self) -> list[str]:
         seen: dict[str, None] = {}
         for r in self.records:
@@ -66,8 +83,9 @@ class History:
             raise KeyError(f"name: '{name}' is not a figure of this history; figures are {self.keys()}")
         shape = np.shape(present[0])
         filler = np.full(shape, np.nan)
-        return np.stack([np.asarray(v, dtype=float) if v is not None and not isinstance(v, str) else filler
-                         for v in vals])
+        return np.stack(
+            [np.asarray(v, dtype=float) if v is not None and not isinstance(v, str) else filler for v in vals]
+        )
 
     def as_arrays(self) -> dict[str, np.ndarray]:
         """Every figure as an array over the windows (strings as an array of str)."""
@@ -76,9 +94,11 @@ class History:
     def table(self, names: list[str] | None = None, width: int = 11) -> str:
         """A plain-text table of the scalar figures, one row per window."""
         if names is None:
-            names = [k for k in self.keys()
-                     if all(np.ndim(r.get(k, 0.0)) == 0 and not isinstance(r.get(k, 0.0), str)
-                            for r in self.records)]
+            names = [
+                k
+                for k in self.keys()
+                if all(np.ndim(r.get(k, 0.0)) == 0 and not isinstance(r.get(k, 0.0), str) for r in self.records)
+            ]
         head = " ".join(f"{n[:width]:>{width}}" for n in names)
         lines = [head, "-" * len(head)]
         for r in self.records:
@@ -88,7 +108,8 @@ class History:
                 if v is None:
                     cells.append(f"{'':>{width}}")
                 elif isinstance(v, (int, np.integer)) or (
-                        isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")):
+                    isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")
+                ):
                     cells.append(f"{int(v):>{width}d}")
                 else:
                     cells.append(f"{float(v):>{width}.4g}")

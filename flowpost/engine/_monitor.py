@@ -51,21 +51,26 @@ Stop rules (the record of the window that stops the run says which, and so does
 step and time budgets live in :func:`flowpost.run`. Blow-ups (non-finite particles or an
 explosive growth of the spread) ask the driver to roll back.
 """
+
 from __future__ import annotations
 
+from collections.abc import Callable
 from functools import partial
-from typing import Any, Callable, NamedTuple
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 from .._validate import boolean, callable_value, fail, integer, non_negative, positive, real
-from ..diagnostics._stein import stein_discrepancy
-from ..numerics import whiten
 from ..diagnostics._mixing import ThinnedTrail, bulk_ess, split_rhat
+from ..diagnostics._stein import stein_discrepancy
+from ..model._target import Target
+from ..numerics import whiten
+from ..steppers.base import Stepper
+from ._history import History
 
-__all__ = ["Monitor", "BareMonitor", "Verdict", "summarise_stats", "chain_figures"]
+__all__ = ["BareMonitor", "Monitor", "Verdict", "chain_figures", "summarise_stats"]
 
 
 class Verdict(NamedTuple):
@@ -198,7 +203,7 @@ class Monitor:
         self._trail = None
         self._clock = None
 
-    def open(self, target, stepper, state) -> None:
+    def open(self, target: Target, stepper: Stepper, state: Any) -> None:
         fig = jax.device_get(_ensemble_figures(target, state.x))
         self._prev = (None, fig["centre"], fig["spread"])
         # the scale for "explosive growth": the larger of the starting spread and the spread
@@ -210,25 +215,55 @@ class Monitor:
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
-    def measure(self, target, state, step: int) -> dict[str, Any]:
+    def measure(self, target: Target, state: Any, step: int) -> dict[str, Any]:
         """The figures computed on the device for one window (ensemble moments, mean
         log-density, non-finite count and, when on, the discrepancy), in one compiled call."""
-        return jax.device_get(_measure(target, state.x, _score_of(state), jnp.asarray(step, jnp.int32),
-                                       self._subset(state.x.shape[0]), self.whitened, self.discrepancy))
+        return jax.device_get(
+            _measure(
+                target,
+                state.x,
+                _score_of(state),
+                jnp.asarray(step, jnp.int32),
+                self._subset(state.x.shape[0]),
+                self.whitened,
+                self.discrepancy,
+            )
+        )
 
-    def measure_batch(self, target, states, steps) -> list[dict[str, Any]]:
+    def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
         """:meth:`measure` for a batch of ensembles (a leading member axis on every leaf of
         ``states``, one step per member) in one compiled, ``vmap``-ped call."""
-        out = jax.device_get(_measure_batch(target, states.x, _score_of(states), jnp.asarray(steps, jnp.int32),
-                                            self._subset(states.x.shape[1]), self.whitened, self.discrepancy))
+        out = jax.device_get(
+            _measure_batch(
+                target,
+                states.x,
+                _score_of(states),
+                jnp.asarray(steps, jnp.int32),
+                self._subset(states.x.shape[1]),
+                self.whitened,
+                self.discrepancy,
+            )
+        )
         return [{k: v[i] for k, v in out.items()} for i in range(len(steps))]
 
     def _subset(self, n: int) -> int:
         return min(self.discrepancy_points, n)
 
-    def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
-             reductions: dict[str, str], measured: dict[str, Any] | None = None,
-             defer_chains: bool = False) -> dict[str, Any]:
+    def read(
+        self,
+        target: Target,
+        stepper: Stepper,
+        state: Any,
+        stats: dict[str, Any],
+        tape: Any,
+        step: int,
+        elapsed: float,
+        *,
+        flow_time: float,
+        reductions: dict[str, str],
+        measured: dict[str, Any] | None = None,
+        defer_chains: bool = False,
+    ) -> dict[str, Any]:
         fig = self.measure(target, state, step) if measured is None else measured
         sizes = np.asarray(stats["step_size"], dtype=float)
         now = float(flow_time)
@@ -270,8 +305,8 @@ class Monitor:
             return None
         return self._trail.groups()
 
-    def judge(self, history) -> Verdict:
-        rec = history.last
+    def judge(self, history: History) -> Verdict:
+        rec = history.last_record
         if rec["n_nonfinite"] > 0:
             return _nonfinite(rec)
         big = float(np.max(rec["spread"])) if np.size(rec["spread"]) else 0.0
@@ -284,17 +319,20 @@ class Monitor:
             m = int(m)
             vals = [r[name] for r in history if "event" not in r and name in r]
             if len(vals) >= 2 * m:
-                recent, before = np.mean(vals[-m:]), np.mean(vals[-2 * m:-m])
+                recent, before = np.mean(vals[-m:]), np.mean(vals[-2 * m : -m])
                 if abs(recent - before) <= float(tol) * max(abs(before), 1e-12):
-                    return Verdict("stop", f"plateau: mean {name} changed by less than {float(tol):g} "
-                                           f"(relative) over the last {m} windows")
+                    return Verdict(
+                        "stop",
+                        f"plateau: mean {name} changed by less than {float(tol):g} "
+                        f"(relative) over the last {m} windows",
+                    )
         if self.stop_when is not None:
             said = self.stop_when(history)
             if said:
                 return Verdict("stop", said if isinstance(said, str) else "user stop rule (stop_when)")
         return GO
 
-    def headline(self, record) -> dict[str, str]:
+    def headline(self, record: dict[str, Any]) -> dict[str, str]:
         out = {}
         if "ksd" in record:
             out["ksd"] = f"{record['ksd']:.3g}"
@@ -314,33 +352,34 @@ class BareMonitor(Monitor):
     def __init__(self):
         super().__init__(discrepancy=False, trail_particles=0)
 
-    def open(self, target, stepper, state) -> None:
+    def open(self, target: Target, stepper: Stepper, state: Any) -> None:
         self.tape_particles = 0
 
-    def measure(self, target, state, step: int) -> dict[str, Any]:
+    def measure(self, target: Target, state: Any, step: int) -> dict[str, Any]:
         return {"n_nonfinite": jax.device_get(_count_nonfinite(state.x))}
 
-    def measure_batch(self, target, states, steps) -> list[dict[str, Any]]:
+    def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
         bad = jax.device_get(_count_nonfinite_batch(states.x))
         return [{"n_nonfinite": bad[i]} for i in range(len(steps))]
 
     def chains(self) -> np.ndarray | None:
         return None
 
-    def read(self, target, stepper, state, stats, tape, step, elapsed, *, flow_time: float,
-             reductions: dict[str, str], measured: dict[str, Any] | None = None,
-             defer_chains: bool = False) -> dict[str, Any]:
+    def read(self, target: Target, stepper: Stepper, state: Any, *args: Any, **window: Any) -> dict[str, Any]:
+        stats, _tape, step, elapsed = args
+        measured = window.get("measured")
         fig = self.measure(target, state, step) if measured is None else measured
+        flow_time, reductions = window["flow_time"], window["reductions"]
         bad = int(fig["n_nonfinite"])
         rec = {"step": int(step), "elapsed": float(elapsed), "n_nonfinite": bad, "flow_time": float(flow_time)}
         rec.update(summarise_stats(stats, reductions))
         return rec
 
-    def judge(self, history) -> Verdict:
-        rec = history.last
+    def judge(self, history: History) -> Verdict:
+        rec = history.last_record
         return _nonfinite(rec) if rec["n_nonfinite"] > 0 else GO
 
-    def headline(self, record) -> dict[str, str]:
+    def headline(self, record: dict[str, Any]) -> dict[str, str]:
         return {}
 
 
@@ -361,10 +400,12 @@ def chain_figures(groups: list[np.ndarray]) -> list[dict[str, float]]:
         start = 0
         for i in members:
             d = groups[i].shape[2]
-            r, e = rhat[start:start + d], ess[start:start + d]
+            r, e = rhat[start : start + d], ess[start : start + d]
             start += d
-            out[i] = {"rhat": float(np.nanmax(r)) if np.any(np.isfinite(r)) else float("nan"),
-                      "ess": float(np.nanmin(e)) if np.any(np.isfinite(e)) else float("nan")}
+            out[i] = {
+                "rhat": float(np.nanmax(r)) if np.any(np.isfinite(r)) else float("nan"),
+                "ess": float(np.nanmin(e)) if np.any(np.isfinite(e)) else float("nan"),
+            }
     return out
 
 

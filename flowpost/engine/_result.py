@@ -12,17 +12,24 @@ File format (ours): a NumPy ``.npz`` archive read with ``allow_pickle=False``, h
 Loading never executes code from the file; a file that is not ours or is damaged raises a
 ``ValueError`` that says so.
 """
+
 from __future__ import annotations
 
 import json
 import os
 import zipfile
-from typing import Any
+from collections.abc import Iterable, Mapping
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ..model._labels import ROOT_NAME, element_labels
 from ._history import History
+
+if TYPE_CHECKING:  # the module itself does not import JAX until a run's result is built
+    from matplotlib.figure import Figure
+
+    from ..model._target import Target
 
 __all__ = ["Result", "load"]
 
@@ -65,9 +72,22 @@ class Result:
         The stepper's own figures (e.g. a tuned step size).
     """
 
-    def __init__(self, *, target=None, state=None, history=None, status="done", reason="",
-                 steps=0, elapsed=0.0, stepper=None, report=None, events=None,
-                 controller_description: str | None = None, _loaded: dict | None = None):
+    def __init__(
+        self,
+        *,
+        target: Target | None = None,
+        state: Any = None,
+        history: History | None = None,
+        status: str = "done",
+        reason: str = "",
+        steps: int = 0,
+        elapsed: float = 0.0,
+        stepper: Any = None,
+        report: Mapping[str, Any] | None = None,
+        events: Iterable[str] | None = None,
+        controller_description: str | None = None,
+        _loaded: dict[str, Any] | None = None,
+    ):
         self.target = target
         self.state = state
         self.history = history if history is not None else History()
@@ -89,7 +109,12 @@ class Result:
         else:
             import jax
 
-            layout = target.layout
+            if target is None or state is None:
+                raise TypeError(
+                    "Result: expected the bound target= and final state= of a run (or use "
+                    f"flowpost.load for a saved result); got target={target!r}, state={state!r}"
+                )
+            layout = target.bound_layout()
             self.unconstrained = np.asarray(jax.device_get(state.x))
             tree = jax.device_get(target.constrain(state.x))
             leaves = layout.treedef.flatten_up_to(tree)
@@ -98,18 +123,18 @@ class Result:
             self._supports = [s.support.describe() for s in layout.slots]
             self._root_array = layout.treedef.num_leaves == 1 and layout.names == (ROOT_NAME,)
             self._constrained = {n: np.asarray(l) for n, l in zip(self._names, leaves)}
-            self.stepper_description = repr(stepper) + (
-                f", {controller_description}" if controller_description else "")
+            self.stepper_description = repr(stepper) + (f", {controller_description}" if controller_description else "")
 
     # ----- views -------------------------------------------------------------------------
     @property
-    def particles(self):
+    def particles(self) -> Any:
         """Final particles in the user's pytree (constrained space)."""
         if self.target is not None:
             import jax
 
             return jax.tree_util.tree_unflatten(
-                self.target.layout.treedef, [self._constrained[n] for n in self._names])
+                self.target.bound_layout().treedef, [self._constrained[n] for n in self._names]
+            )
         return _rebuild(self._names, self._constrained, self._root_array)
 
     @property
@@ -140,8 +165,11 @@ class Result:
         lo_lab, hi_lab = f"{100 * lo_q:g}%", f"{100 * hi_q:g}%"
         width = max(12, max(len(n) for n in names) + 2)
         head = f"{'parameter':<{width}}{'post. mean':>12}{'post. sd':>12}{lo_lab:>12}{hi_lab:>12}"
-        lines = [f"flowpost result: {self.n_particles} particles, {self.steps} steps, {self.stepper_description}",
-                 head, "=" * len(head)]
+        lines = [
+            f"flowpost result: {self.n_particles} particles, {self.steps} steps, {self.stepper_description}",
+            head,
+            "=" * len(head),
+        ]
         with np.errstate(all="ignore"):
             mean = np.mean(mat, axis=0)
             sd = np.std(mat, axis=0, ddof=1) if mat.shape[0] > 1 else np.full(mat.shape[1], np.nan)
@@ -155,7 +183,7 @@ class Result:
             lines.append(f"{k}: {v:.5g}" if np.ndim(v) == 0 else f"{k}: {v}")
         return "\n".join(lines)
 
-    def plot(self, params: list[str] | None = None, pair: tuple[str, str] | None = None):
+    def plot(self, params: list[str] | None = None, pair: tuple[str, str] | None = None) -> Figure:
         """Monitor curves, marginal histograms of ``params`` and a scatter of ``pair``;
         returns the matplotlib figure (see :func:`flowpost.plotting.run_figure`)."""
         from ..plotting import run_figure
@@ -169,15 +197,23 @@ class Result:
     def save(self, path: str | os.PathLike) -> None:
         """Write the result to ``path`` (``.npz`` with JSON metadata; see the module docstring)."""
         meta = {
-            "format": RESULT_FORMAT, "version": 1,
-            "names": self._names, "shapes": self._shapes, "supports": self._supports,
+            "format": RESULT_FORMAT,
+            "version": 1,
+            "names": self._names,
+            "shapes": self._shapes,
+            "supports": self._supports,
             "root_array": bool(self._root_array),
-            "status": self.status, "reason": self.reason, "steps": self.steps,
-            "elapsed": self.elapsed, "stepper": self.stepper_description,
+            "status": self.status,
+            "reason": self.reason,
+            "steps": self.steps,
+            "elapsed": self.elapsed,
+            "stepper": self.stepper_description,
             "report": {k: (v if np.ndim(v) == 0 else np.asarray(v).tolist()) for k, v in self.report.items()},
-            "events": self.events, "history": self.history.to_json(),
+            "events": self.events,
+            "history": self.history.to_json(),
         }
-        arrays = {f"p:{n}": self._constrained[n] for n in self._names}
+        # Any: numpy's stub would match the unpacked arrays against savez's allow_pickle: bool
+        arrays: dict[str, Any] = {f"p:{n}": self._constrained[n] for n in self._names}
         with open(path, "wb") as fh:
             np.savez(fh, meta=np.array(json.dumps(meta)), u=self.unconstrained, **arrays)
 
@@ -198,8 +234,22 @@ def load(path: str | os.PathLike) -> Result:
         raise
     except (ValueError, KeyError, OSError, EOFError, zipfile.BadZipFile, json.JSONDecodeError) as err:
         raise ValueError(f"path: '{path}' is not a readable flowpost result file ({err})") from err
-    loaded = {"names": meta["names"], "shapes": meta["shapes"], "supports": meta["supports"],
-              "root_array": meta["root_array"], "arrays": arrays, "u": u, "stepper": meta["stepper"]}
-    return Result(history=History.from_json(meta["history"]), status=meta["status"],
-                  reason=meta["reason"], steps=meta["steps"], elapsed=meta["elapsed"],
-                  report=meta["report"], events=meta["events"], _loaded=loaded)
+    loaded = {
+        "names": meta["names"],
+        "shapes": meta["shapes"],
+        "supports": meta["supports"],
+        "root_array": meta["root_array"],
+        "arrays": arrays,
+        "u": u,
+        "stepper": meta["stepper"],
+    }
+    return Result(
+        history=History.from_json(meta["history"]),
+        status=meta["status"],
+        reason=meta["reason"],
+        steps=meta["steps"],
+        elapsed=meta["elapsed"],
+        report=meta["report"],
+        events=meta["events"],
+        _loaded=loaded,
+    )

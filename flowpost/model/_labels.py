@@ -8,6 +8,7 @@ parameter adds its index in brackets, C order: ``w[1,2]`` (a scalar parameter is
 alone). Unconstrained coordinates, which a simplex has one fewer of, are numbered flat:
 ``p[0]``, ``p[1]``.
 """
+
 from __future__ import annotations
 
 from collections.abc import Iterable

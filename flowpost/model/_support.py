@@ -13,9 +13,11 @@ log-density automatically.
 Supports are frozen, hashable dataclasses so that a :class:`~flowpost.Target` built from
 them can be a static part of a compiled function.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -56,19 +58,19 @@ class Real:
 class Positive(Real):
     """Positive parameter: ``x = exp(u)``, ``log |dx/du| = u`` summed over elements."""
 
-    def forward(self, u, shape):
+    def forward(self, u: jax.Array, shape: tuple[int, ...]) -> jax.Array:
         return jnp.exp(u).reshape(shape)
 
-    def inverse(self, x):
+    def inverse(self, x: jax.Array) -> jax.Array:
         return jnp.log(x).reshape(-1)
 
-    def log_jacobian(self, u):
+    def log_jacobian(self, u: jax.Array) -> jax.Array:
         return jnp.sum(u)
 
-    def contains(self, x):
+    def contains(self, x: jax.Array) -> jax.Array:
         return jnp.isfinite(x) & (x > 0)
 
-    def describe(self):
+    def describe(self) -> str:
         return "positive"
 
 
@@ -83,7 +85,7 @@ class Interval(Real):
     low: float = 0.0
     high: float = 1.0
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         finite = "a finite number (an unbounded side is a half-line: use fp.Positive(), or Real())"
         low = real("Interval.low", self.low, expected=finite)
         high = real("Interval.high", self.high, expected=finite)
@@ -92,21 +94,21 @@ class Interval(Real):
         object.__setattr__(self, "low", low)
         object.__setattr__(self, "high", high)
 
-    def forward(self, u, shape):
+    def forward(self, u: jax.Array, shape: tuple[int, ...]) -> jax.Array:
         return (self.low + (self.high - self.low) * jax.nn.sigmoid(u)).reshape(shape)
 
-    def inverse(self, x):
+    def inverse(self, x: jax.Array) -> jax.Array:
         z = (x - self.low) / (self.high - self.low)
         return (jnp.log(z) - jnp.log1p(-z)).reshape(-1)
 
-    def log_jacobian(self, u):
+    def log_jacobian(self, u: jax.Array) -> jax.Array:
         width = jnp.asarray(self.high - self.low, u.dtype)
         return jnp.sum(jnp.log(width) + jax.nn.log_sigmoid(u) + jax.nn.log_sigmoid(-u))
 
-    def contains(self, x):
+    def contains(self, x: jax.Array) -> jax.Array:
         return jnp.isfinite(x) & (x > self.low) & (x < self.high)
 
-    def describe(self):
+    def describe(self) -> str:
         return f"interval({self.low:g}, {self.high:g})"
 
 
@@ -121,36 +123,36 @@ class Simplex(Real):
     are supported.
     """
 
-    def free_size(self, shape):
+    def free_size(self, shape: tuple[int, ...]) -> int:
         if len(shape) != 1 or shape[0] < 2:
             raise fail("Simplex", "a simplex parameter of shape (K,) with K >= 2", tuple(shape))
         return shape[0] - 1
 
-    def forward(self, u, shape):
+    def forward(self, u: jax.Array, shape: tuple[int, ...]) -> jax.Array:
         full = jnp.concatenate([u, jnp.zeros((1,), u.dtype)])
         return jax.nn.softmax(full).reshape(shape)
 
-    def inverse(self, x):
+    def inverse(self, x: jax.Array) -> jax.Array:
         logs = jnp.log(x)
         return logs[:-1] - logs[-1]
 
-    def log_jacobian(self, u):
+    def log_jacobian(self, u: jax.Array) -> jax.Array:
         full = jnp.concatenate([u, jnp.zeros((1,), u.dtype)])
         return jnp.sum(jax.nn.log_softmax(full))
 
-    def contains(self, x):
+    def contains(self, x: jax.Array) -> jax.Array:
         ok = jnp.isfinite(x) & (x > 0)
         total_ok = jnp.abs(jnp.sum(x) - 1.0) < 1e-4
         return ok & total_ok
 
-    def describe(self):
+    def describe(self) -> str:
         return "simplex"
 
 
 _BY_NAME = {"real": Real(), "positive": Positive(), "simplex": Simplex(), "unit": Interval(0.0, 1.0)}
 
 
-def as_support(spec) -> Real:
+def as_support(spec: Any) -> Real:
     """Turn a support given as an object or a name ('real', 'positive', 'simplex', 'unit')
     or a ``(low, high)`` pair into a support object."""
     if isinstance(spec, Real):
@@ -159,5 +161,9 @@ def as_support(spec) -> Real:
         return _BY_NAME[spec]
     if isinstance(spec, tuple) and len(spec) == 2:
         return Interval(spec[0], spec[1])
-    raise fail("support", f"flowpost.Positive(), Interval(low, high), Simplex(), Real(), one of "
-               f"{sorted(_BY_NAME)} or a (low, high) pair", spec, TypeError if not isinstance(spec, str) else ValueError)
+    raise fail(
+        "support",
+        f"flowpost.Positive(), Interval(low, high), Simplex(), Real(), one of {sorted(_BY_NAME)} or a (low, high) pair",
+        spec,
+        TypeError if not isinstance(spec, str) else ValueError,
+    )

@@ -14,9 +14,10 @@ A ``Target`` is a registered JAX pytree: the data are its leaves (so new data do
 recompilation and a run can be ``vmap``-ped over datasets) while the log-density, the
 supports and the parameter layout are static.
 """
+
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -28,6 +29,7 @@ from ._labels import ROOT_NAME, coordinate_labels, element_labels, path_label
 from ._support import Real, as_support
 
 __all__ = ["Layout", "Target", "as_target"]
+
 
 @dataclass(frozen=True)
 class _Slot:
@@ -66,7 +68,7 @@ class Layout:
             out.extend(coordinate_labels(s.name, s.shape, s.size))
         return out
 
-    def unflatten(self, u: jax.Array):
+    def unflatten(self, u: jax.Array) -> tuple[Any, jax.Array]:
         """Unconstrained vector ``(d,)`` -> (constrained pytree, log-Jacobian)."""
         leaves, logj = [], jnp.zeros((), u.dtype)
         for s in self.slots:
@@ -75,18 +77,18 @@ class Layout:
             logj = logj + s.support.log_jacobian(piece)
         return jax.tree_util.tree_unflatten(self.treedef, leaves), logj
 
-    def flatten(self, theta) -> jax.Array:
+    def flatten(self, theta: Any) -> jax.Array:
         """Constrained pytree (one particle) -> unconstrained vector ``(d,)``."""
         leaves = self.treedef.flatten_up_to(theta)
         parts = [s.support.inverse(jnp.asarray(leaf)) for s, leaf in zip(self.slots, leaves)]
         return jnp.concatenate([jnp.atleast_1d(p) for p in parts])
 
 
-def _build_layout(init, support) -> tuple[Layout, int]:
+def _build_layout(init: Any, support: dict[str, Real]) -> tuple[Layout, int]:
     leaves_with_path, treedef = jax.tree_util.tree_flatten_with_path(init)
     if not leaves_with_path:
         raise ValueError("init: expected a pytree of arrays with a leading particle axis; got no arrays")
-    n = None
+    n = 0  # the particle count N, read from the first leaf
     slots, start = [], 0
     names = []
     for path, leaf in leaves_with_path:
@@ -97,7 +99,7 @@ def _build_layout(init, support) -> tuple[Layout, int]:
                 f"init: parameter '{name}' has no leading particle axis (shape {tuple(arr.shape)}); "
                 "every leaf of init must have shape (N, ...)"
             )
-        if n is None:
+        if not names:
             n = arr.shape[0]
         elif arr.shape[0] != n:
             raise ValueError(
@@ -112,9 +114,7 @@ def _build_layout(init, support) -> tuple[Layout, int]:
         start += size
     unknown = set(support) - set(names)
     if unknown:
-        raise ValueError(
-            f"support: {sorted(unknown)} not among the parameters of init ({names})"
-        )
+        raise ValueError(f"support: {sorted(unknown)} not among the parameters of init ({names})")
     return Layout(treedef, tuple(slots), start), n
 
 
@@ -175,14 +175,14 @@ class Target:
         self.layout = _layout
 
     # ----- pytree protocol ------------------------------------------------------------
-    def _aux(self):
+    def _aux(self) -> tuple[Any, ...]:
         return (self._terms, self._named, self._support, self.layout)
 
-    def tree_flatten(self):
+    def tree_flatten(self) -> tuple[tuple[Any], tuple[Any, ...]]:
         return (self.data,), self._aux()
 
     @classmethod
-    def tree_unflatten(cls, aux, children):
+    def tree_unflatten(cls, aux: tuple[Any, ...], children: Sequence[Any]) -> Target:
         obj = cls.__new__(cls)
         obj._terms, obj._named, obj._support, obj.layout = aux
         obj.data = children[0]
@@ -203,7 +203,7 @@ class Target:
     def support(self) -> dict:
         return dict(self._support)
 
-    def bind(self, init) -> tuple[Target, jax.Array]:
+    def bind(self, init: Any) -> tuple[Target, jax.Array]:
         """Fix the parameter layout from ``init`` (pytree with leading axis N) and return the
         bound target and the unconstrained ``(N, d)`` starting ensemble.
 
@@ -230,7 +230,7 @@ class Target:
         return bound, x
 
     def _check_log_p(self, u0: jax.Array) -> None:
-        layout = self.layout
+        layout = self.bound_layout()
         shapes = {s.name: s.shape for s in layout.slots}
         for name, f in self._terms:
             label = "log_p" if not self._named else f"log_p['{name}']"
@@ -252,9 +252,7 @@ class Target:
                     f"{getattr(out, 'shape', type(out).__name__)}"
                 )
             if not jnp.issubdtype(out.dtype, jnp.floating):
-                raise TypeError(
-                    f"{label} must return a floating-point scalar; it returned dtype {out.dtype}"
-                )
+                raise TypeError(f"{label} must return a floating-point scalar; it returned dtype {out.dtype}")
             try:
                 jax.eval_shape(jax.grad(one), u0)
             except Exception as err:
@@ -267,15 +265,16 @@ class Target:
     def _call(self, f, theta):
         return f(theta) if self.data is None else f(theta, self.data)
 
-    def _require_layout(self):
+    def bound_layout(self) -> Layout:
+        """The layout of a bound target; refuses an unbound one."""
         if self.layout is None:
             raise ValueError("target: this Target is not bound to a parameter layout; call target.bind(init)")
+        return self.layout
 
     @property
     def dim(self) -> int:
         """Number of unconstrained coordinates ``d``."""
-        self._require_layout()
-        return self.layout.dim
+        return self.bound_layout().dim
 
     @property
     def term_names(self) -> tuple[str, ...]:
@@ -287,13 +286,11 @@ class Target:
         return names
 
     def _constrained(self) -> bool:
-        self._require_layout()
-        return any(type(s.support) is not Real for s in self.layout.slots)
+        return any(type(s.support) is not Real for s in self.bound_layout().slots)
 
     def log_density_one(self, u: jax.Array) -> jax.Array:
         """``log_p(T(u)) + log|det dT/du|`` for one particle ``u`` of shape ``(d,)``."""
-        self._require_layout()
-        theta, logj = self.layout.unflatten(u)
+        theta, logj = self.bound_layout().unflatten(u)
         total = logj
         for _, f in self._terms:
             total = total + self._call(f, theta)
@@ -301,8 +298,7 @@ class Target:
 
     def term_one(self, name: str, u: jax.Array) -> jax.Array:
         """One named term at one particle (``"jacobian"`` gives the log-Jacobian)."""
-        self._require_layout()
-        theta, logj = self.layout.unflatten(u)
+        theta, logj = self.bound_layout().unflatten(u)
         if name == "jacobian":
             return logj
         for k, f in self._terms:
@@ -331,20 +327,19 @@ class Target:
         return jax.vmap(jax.value_and_grad(lambda u: self.term_one(name, u)))(x)
 
     # ----- user-space views -------------------------------------------------------------------
-    def constrain(self, x: jax.Array):
+    def constrain(self, x: jax.Array) -> Any:
         """Unconstrained ``(N, d)`` ensemble -> the user's pytree with leading axis N."""
-        self._require_layout()
-        return jax.vmap(lambda u: self.layout.unflatten(u)[0])(x)
+        layout = self.bound_layout()
+        return jax.vmap(lambda u: layout.unflatten(u)[0])(x)
 
-    def unconstrain(self, theta) -> jax.Array:
+    def unconstrain(self, theta: Any) -> jax.Array:
         """The user's pytree with leading axis N -> unconstrained ``(N, d)``."""
-        self._require_layout()
-        return jax.vmap(self.layout.flatten)(theta)
+        return jax.vmap(self.bound_layout().flatten)(theta)
 
     def constrained_matrix(self, x: jax.Array) -> jax.Array:
         """Constrained values as an ``(N, k)`` matrix, one column per element name."""
         tree = self.constrain(x)
-        leaves = self.layout.treedef.flatten_up_to(tree)
+        leaves = self.bound_layout().treedef.flatten_up_to(tree)
         n = x.shape[0]
         return jnp.concatenate([jnp.reshape(l, (n, -1)) for l in leaves], axis=1)
 
@@ -352,7 +347,7 @@ class Target:
 jax.tree_util.register_pytree_node(Target, Target.tree_flatten, Target.tree_unflatten)
 
 
-def as_target(obj) -> Target:
+def as_target(obj: Any) -> Target:
     """Accept a :class:`Target` or a bare log-density callable."""
     if isinstance(obj, Target):
         return obj

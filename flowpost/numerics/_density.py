@@ -39,8 +39,8 @@ from jax import lax
 from jax.scipy.special import logsumexp
 
 from .._validate import fail, positive
-from ._kernels import _as_points, _same_dim
-from ._pairwise import DEFAULT_BLOCK, _check_block, map_row_blocks, pairwise_sqdist
+from ._kernels import as_points, same_dim
+from ._pairwise import DEFAULT_BLOCK, check_block, map_row_blocks, pairwise_sqdist
 
 Array = jax.Array
 ArrayLike = Any
@@ -60,9 +60,9 @@ def _check_bandwidth(bandwidth: Any) -> None:
 
 
 def _kde_setup(y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike):
-    y = _as_points("y", y)
-    centres = _as_points("centres", centres)
-    _same_dim("centres", centres, "y", y)
+    y = as_points("y", y)
+    centres = as_points("centres", centres)
+    same_dim("centres", centres, "y", y)
     h = jnp.asarray(bandwidth, dtype=jnp.result_type(y, centres))
     if h.ndim != 0:
         raise fail("bandwidth", "a scalar", h)
@@ -70,9 +70,7 @@ def _kde_setup(y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike):
     return y - shift, centres - shift, h
 
 
-def log_kde(
-    y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike, *, block: int = DEFAULT_BLOCK
-) -> Array:
+def log_kde(y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike, *, block: int = DEFAULT_BLOCK) -> Array:
     r"""Log of a Gaussian kernel density estimate, in row blocks.
 
     .. math::
@@ -100,7 +98,7 @@ def log_kde(
     (M,) array.
     """
     _check_bandwidth(bandwidth)
-    return _log_kde(y, centres, bandwidth, block=_check_block(block))
+    return _log_kde(y, centres, bandwidth, block=check_block(block))
 
 
 @partial(jax.jit, static_argnames=("block",))
@@ -116,9 +114,7 @@ def _log_kde(y, centres, bandwidth, *, block):
     return map_row_blocks(rows, yc, block=block) - log_norm
 
 
-def grad_log_kde(
-    y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike, *, block: int = DEFAULT_BLOCK
-) -> Array:
+def grad_log_kde(y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike, *, block: int = DEFAULT_BLOCK) -> Array:
     r"""Gradient in ``y`` of :func:`log_kde`, in closed form.
 
     .. math::
@@ -129,7 +125,7 @@ def grad_log_kde(
     Returns an ``(M, d)`` array; memory ``O(block N)``.
     """
     _check_bandwidth(bandwidth)
-    return _grad_log_kde(y, centres, bandwidth, block=_check_block(block))
+    return _grad_log_kde(y, centres, bandwidth, block=check_block(block))
 
 
 @partial(jax.jit, static_argnames=("block",))

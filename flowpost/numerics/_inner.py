@@ -126,12 +126,12 @@ class InnerSolver:
     True
     """
 
-    method: str = static("lbfgs")
+    method: str = static(default="lbfgs")
     tol: float = 1e-6
     max_iters: int = 50
     learning_rate: float | None = None
-    memory_size: int = static(10)
-    linesearch_steps: int = static(20)
+    memory_size: int = static(default=10)
+    linesearch_steps: int = static(default=20)
 
     def __post_init__(self) -> None:
         # Runs on user values only (JAX rebuilds the pytree without __init__);
@@ -141,14 +141,10 @@ class InnerSolver:
         object.__setattr__(self, "tol", non_negative("tol", self.tol))
         object.__setattr__(self, "max_iters", integer("max_iters", self.max_iters, minimum=0))
         object.__setattr__(self, "memory_size", integer("memory_size", self.memory_size, minimum=1))
-        object.__setattr__(
-            self, "linesearch_steps", integer("linesearch_steps", self.linesearch_steps, minimum=1)
-        )
+        object.__setattr__(self, "linesearch_steps", integer("linesearch_steps", self.linesearch_steps, minimum=1))
         if self.learning_rate is None:
             if method != "lbfgs":
-                raise fail(
-                    "learning_rate", f"a positive finite number for method={method!r}", None
-                )
+                raise fail("learning_rate", f"a positive finite number for method={method!r}", None)
         else:
             object.__setattr__(self, "learning_rate", positive("learning_rate", self.learning_rate))
 
@@ -217,9 +213,7 @@ class SolveReport(NamedTuple):
     grad_evals: jax.Array
 
 
-def minimise(
-    solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree
-) -> tuple[PyTree, SolveReport]:
+def minimise(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree) -> tuple[PyTree, SolveReport]:
     r"""Minimise a smooth scalar function with optax inside a ``while_loop``.
 
     Iterates :math:`x_{k+1} = x_k + u_k` with the optax updates :math:`u_k`
@@ -283,8 +277,7 @@ def minimise(
         shape = getattr(out, "shape", type(out).__name__)
         dtype = getattr(out, "dtype", "")
         raise ValueError(
-            f"fun: expected a function returning a real floating-point scalar (shape ()); "
-            f"got shape {shape} {dtype}"
+            f"fun: expected a function returning a real floating-point scalar (shape ()); got shape {shape} {dtype}"
         )
 
     return _solve(solver, fun, x0)
@@ -317,7 +310,7 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
     if uses_ls:
         value_and_grad = optax.value_and_grad_from_state(objective)
 
-        def evaluate(x, state):
+        def evaluate(x: Any, state: Any) -> tuple[jax.typing.ArrayLike, Any, jax.Array]:
             # value_and_grad_from_state reuses the line search's value and
             # gradient; it recomputes only when the stored value is not finite
             # (always the case for the initial state, whose value is +inf).
@@ -332,7 +325,7 @@ def _solve(solver: InnerSolver, fun: Callable[[PyTree], jax.Array], x0: PyTree):
     else:
         plain = jax.value_and_grad(objective)
 
-        def evaluate(x, state):
+        def evaluate(x: Any, state: Any) -> tuple[jax.typing.ArrayLike, Any, jax.Array]:
             value, grad = plain(x)
             return value, grad, jnp.ones((), jnp.int32)
 

@@ -75,13 +75,12 @@ DEFAULT_MEDIAN_POINTS: int = 1000
 # input checks (shared with the blocked sums, the densities and whitening)
 # --------------------------------------------------------------------------
 
-def _as_points(name: str, x: ArrayLike) -> Array:
+
+def as_points(name: str, x: ArrayLike) -> Array:
     """Return ``x`` as a floating ``(N, d)`` array or raise a clear error."""
     x = jnp.asarray(x)
     if not jnp.issubdtype(x.dtype, jnp.inexact):
-        raise TypeError(
-            f"{name}: expected a floating-point array of shape (N, d); got dtype {x.dtype}"
-        )
+        raise TypeError(f"{name}: expected a floating-point array of shape (N, d); got dtype {x.dtype}")
     if x.ndim != 2:
         raise ValueError(f"{name}: expected an array of shape (N, d); got shape {x.shape}")
     if x.shape[0] < 1:
@@ -89,16 +88,15 @@ def _as_points(name: str, x: ArrayLike) -> Array:
     return x
 
 
-def _same_dim(name_a: str, a: Array, name_b: str, b: Array) -> None:
+def same_dim(name_a: str, a: Array, name_b: str, b: Array) -> None:
     if a.shape[1] != b.shape[1]:
-        raise ValueError(
-            f"{name_b}: expected dimension d = {a.shape[1]} like {name_a}; got shape {b.shape}"
-        )
+        raise ValueError(f"{name_b}: expected dimension d = {a.shape[1]} like {name_a}; got shape {b.shape}")
 
 
 # --------------------------------------------------------------------------
 # bandwidth rules
 # --------------------------------------------------------------------------
+
 
 @partial(jax.jit, static_argnames=("max_points",))
 def median_distance(x: ArrayLike, *, max_points: int = DEFAULT_MEDIAN_POINTS) -> Array:
@@ -129,7 +127,7 @@ def median_distance(x: ArrayLike, *, max_points: int = DEFAULT_MEDIAN_POINTS) ->
     # kernels defined here; importing it at call (trace) time keeps the layering acyclic.
     from ._pairwise import pairwise_sqdist
 
-    x = _as_points("x", x)
+    x = as_points("x", x)
     n = x.shape[0]
     max_points = integer("max_points", max_points, minimum=2)
     if n < 2:
@@ -182,7 +180,7 @@ def normal_reference_bandwidth(x: ArrayLike) -> Array:
     :func:`whiten`), where ``sigma = 1``.  Returns ``1.0`` times the rate
     factor when all points coincide (zero variance).
     """
-    x = _as_points("x", x)
+    x = as_points("x", x)
     n, d = x.shape
     if n < 2:
         raise fail("x", "at least 2 points for a variance", x)
@@ -194,6 +192,7 @@ def normal_reference_bandwidth(x: ArrayLike) -> Array:
 # --------------------------------------------------------------------------
 # kernels
 # --------------------------------------------------------------------------
+
 
 class RadialKernel:
     r"""Base class of radial kernels ``k(x, y) = f(|x - y|^2)``.
@@ -217,7 +216,7 @@ class RadialKernel:
         raise NotImplementedError
 
     # -- helpers shared by the subclasses ---------------------------------
-    def _resolve(self, scale: ArrayLike | None, dtype) -> Array:
+    def resolve(self, scale: ArrayLike | None, dtype) -> Array:
         if scale is None:
             fixed = self.fixed_scale()
             if fixed is None:
@@ -234,7 +233,7 @@ class RadialKernel:
         """Kernel value ``k(x, y)``; ``x`` and ``y`` broadcast over leading axes, last axis ``d``."""
         x, y = jnp.asarray(x), jnp.asarray(y)
         dtype = jnp.result_type(x, y)
-        s = self._resolve(scale, dtype)
+        s = self.resolve(scale, dtype)
         r2 = jnp.sum((x - y) ** 2, axis=-1)
         return self.profile(r2, s)[0]
 
@@ -242,7 +241,7 @@ class RadialKernel:
         r"""Gradient in the first argument, ``\nabla_x k(x, y) = 2 f'(r_2) (x - y)``."""
         x, y = jnp.asarray(x), jnp.asarray(y)
         dtype = jnp.result_type(x, y)
-        s = self._resolve(scale, dtype)
+        s = self.resolve(scale, dtype)
         diff = x - y
         r2 = jnp.sum(diff**2, axis=-1)
         return 2.0 * self.profile(r2, s)[1][..., None] * diff
@@ -279,7 +278,7 @@ class RBF(RadialKernel):
         return self.bandwidth
 
     def scale_for(self, x: Array) -> Array:
-        x = _as_points("x", x)
+        x = as_points("x", x)
         if self.bandwidth is not None:
             return jnp.asarray(self.bandwidth, dtype=x.dtype)
         n = x.shape[0]
@@ -328,7 +327,7 @@ class IMQ(RadialKernel):
         return self.scale
 
     def scale_for(self, x: Array) -> Array:
-        x = _as_points("x", x)
+        x = as_points("x", x)
         return jnp.asarray(self.scale, dtype=x.dtype)
 
     def profile(self, r2: Array, scale: Array) -> tuple[Array, Array, Array]:
@@ -341,12 +340,12 @@ class IMQ(RadialKernel):
         return f, df, d2f
 
 
-def _check_kernel(kernel: Any) -> RadialKernel:
+def check_kernel(kernel: Any) -> RadialKernel:
     return instance("kernel", kernel, RadialKernel, "a kernel such as RBF() or IMQ()")
 
 
-def _resolve_scale(kernel: RadialKernel, x_src: Array, scale: ArrayLike | None) -> Array:
-    _check_kernel(kernel)
+def resolve_scale(kernel: RadialKernel, x_src: Array, scale: ArrayLike | None) -> Array:
+    check_kernel(kernel)
     if scale is None:
         return kernel.scale_for(x_src)
     return jnp.asarray(scale, dtype=x_src.dtype)

@@ -53,7 +53,7 @@ import jax.numpy as jnp
 from jax import lax
 
 from .._validate import fail, integer
-from ._kernels import RadialKernel, _as_points, _check_kernel, _resolve_scale, _same_dim
+from ._kernels import RadialKernel, as_points, check_kernel, resolve_scale, same_dim
 
 Array = jax.Array
 ArrayLike = Any
@@ -75,7 +75,7 @@ DEFAULT_BLOCK: int = 512
 _HIGHEST = lax.Precision.HIGHEST
 
 
-def _check_block(block: Any) -> int:
+def check_block(block: Any) -> int:
     return integer("block", block, minimum=1)
 
 
@@ -86,6 +86,7 @@ def _check_batch(batch: Any, n: int) -> int:
 # --------------------------------------------------------------------------
 # blocked primitive
 # --------------------------------------------------------------------------
+
 
 def pairwise_sqdist(y: Array, x: Array) -> Array:
     r"""Squared distances ``|y_i - x_j|^2`` as ``|y_i|^2 + |x_j|^2 - 2 y_i . x_j``.
@@ -116,16 +117,14 @@ def map_row_blocks(fn: Callable[[Any], Any], rows: Any, *, block: int = DEFAULT_
     Peak memory is that of one call of ``fn`` (e.g. ``O(b N)`` for a block
     against ``N`` sources) plus the inputs and outputs.
     """
-    block = _check_block(block)
+    block = check_block(block)
     leaves = jax.tree.leaves(rows)
     if not leaves:
         raise fail("rows", "a pytree with at least one array", rows)
     n = leaves[0].shape[0]
     for leaf in leaves:
         if leaf.ndim < 1 or leaf.shape[0] != n:
-            raise ValueError(
-                f"rows: expected arrays sharing the leading length {n}; got shape {leaf.shape}"
-            )
+            raise ValueError(f"rows: expected arrays sharing the leading length {n}; got shape {leaf.shape}")
     if n < 1:
         raise fail("rows", "at least one row", rows)
     b = min(block, n)
@@ -158,8 +157,7 @@ def _flat_values(values: ArrayLike, n: int) -> tuple[Array, tuple[int, ...]]:
     values = jnp.asarray(values)
     if values.ndim < 1 or values.shape[0] != n:
         raise ValueError(
-            f"values: expected leading dimension N = {n} (one row per source point); "
-            f"got shape {values.shape}"
+            f"values: expected leading dimension N = {n} (one row per source point); got shape {values.shape}"
         )
     trailing = values.shape[1:]
     return values.reshape(n, -1), trailing
@@ -208,18 +206,18 @@ def kernel_sums(
     A : (M, ...) array, same trailing shape as ``values``.
     B : (M, d) array.
     """
-    _check_kernel(kernel)
-    return _kernel_sums(kernel, x_src, values, x_dst, block=_check_block(block), scale=scale)
+    check_kernel(kernel)
+    return _kernel_sums(kernel, x_src, values, x_dst, block=check_block(block), scale=scale)
 
 
 @partial(jax.jit, static_argnames=("block",))
 def _kernel_sums(kernel, x_src, values, x_dst, *, block, scale):
-    x_src = _as_points("x_src", x_src)
-    x_dst = x_src if x_dst is None else _as_points("x_dst", x_dst)
-    _same_dim("x_src", x_src, "x_dst", x_dst)
+    x_src = as_points("x_src", x_src)
+    x_dst = x_src if x_dst is None else as_points("x_dst", x_dst)
+    same_dim("x_src", x_src, "x_dst", x_dst)
     n = x_src.shape[0]
     v, trailing = _flat_values(values, n)
-    s = _resolve_scale(kernel, x_src, scale)
+    s = resolve_scale(kernel, x_src, scale)
     shift = lax.stop_gradient(jnp.mean(x_src, axis=0))
     xc = x_src - shift
     yc = x_dst - shift
@@ -268,17 +266,17 @@ def random_batch_sums(
     A : (N, ...) array; B : (N, d) array, in the original particle order;
     sizes : (N,) int array, the size of the batch of each particle.
     """
-    _check_kernel(kernel)
+    check_kernel(kernel)
     return _random_batch_sums(kernel, x, values, key, integer("batch", batch, minimum=2), scale=scale)
 
 
 @partial(jax.jit, static_argnames=("batch",))
 def _random_batch_sums(kernel, x, values, key, batch, *, scale):
-    x = _as_points("x", x)
+    x = as_points("x", x)
     n, d = x.shape
     p = _check_batch(batch, n)
     v, trailing = _flat_values(values, n)
-    s = _resolve_scale(kernel, x, scale)
+    s = resolve_scale(kernel, x, scale)
     q, r = divmod(n, p)
     n_regular = (q - 1) * p if r else q * p
 
@@ -292,9 +290,7 @@ def _random_batch_sums(kernel, x, values, key, batch, *, scale):
 
     kv_parts, grad_parts, size_parts = [], [], []
     if n_regular:
-        kv_g, grad_g = jax.vmap(group)(
-            xp[:n_regular].reshape(-1, p, d), vp[:n_regular].reshape(-1, p, v.shape[1])
-        )
+        kv_g, grad_g = jax.vmap(group)(xp[:n_regular].reshape(-1, p, d), vp[:n_regular].reshape(-1, p, v.shape[1]))
         kv_parts.append(kv_g.reshape(n_regular, -1))
         grad_parts.append(grad_g.reshape(n_regular, d))
         size_parts.append(jnp.full((n_regular,), p, dtype=jnp.int32))
@@ -352,16 +348,15 @@ def interaction_means(
     ``kernel`` is a pytree argument (its numbers may be traced); ``batch`` and
     ``block`` are static.
     """
-    _check_kernel(kernel)
+    check_kernel(kernel)
     if batch is not None:
         batch = integer("batch", batch, minimum=2)
-    return _interaction_means(kernel, x, values, batch=batch, key=key, block=_check_block(block),
-                              scale=scale)
+    return _interaction_means(kernel, x, values, batch=batch, key=key, block=check_block(block), scale=scale)
 
 
 @partial(jax.jit, static_argnames=("batch", "block"))
 def _interaction_means(kernel, x, values, *, batch, key, block, scale):
-    x = _as_points("x", x)
+    x = as_points("x", x)
     n = x.shape[0]
     if batch is None:
         kv, grad = kernel_sums(kernel, x, values, block=block, scale=scale)
@@ -369,7 +364,7 @@ def _interaction_means(kernel, x, values, *, batch, key, block, scale):
     if key is None:
         raise fail("key", "a PRNG key when batch is an int (random-batch interaction)", None)
     _check_batch(batch, n)
-    s = _resolve_scale(kernel, x, scale)
+    s = resolve_scale(kernel, x, scale)
     kv, grad, sizes = random_batch_sums(kernel, x, values, key, batch, scale=s)
     v = jnp.asarray(values)
     f0 = kernel.profile(jnp.zeros((), dtype=x.dtype), s)[0]

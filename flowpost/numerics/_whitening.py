@@ -26,7 +26,7 @@ from jax import lax
 from jax.scipy.linalg import solve_triangular
 
 from .._validate import positive
-from ._kernels import _as_points
+from ._kernels import as_points
 
 Array = jax.Array
 ArrayLike = Any
@@ -79,12 +79,19 @@ def whiten(x: ArrayLike, *, ridge: float | None = None) -> Whitening:
     ``1.5e-8`` in float64).  If ``tr Sigma = 0`` (all points equal, or
     ``N = 1``) then ``lambda = 1``.  Differentiable in ``x``.
     """
-    x = _as_points("x", x)
-    n, d = x.shape
+    x = as_points("x", x)
     if ridge is None:
         ridge = math.sqrt(float(jnp.finfo(x.dtype).eps))
     else:
         ridge = positive("ridge", ridge)
+    return ridged_whitening(x, ridge)
+
+
+def ridged_whitening(x: Array, ridge: ArrayLike) -> Whitening:
+    """The whitening of :func:`whiten` for checked ``(N, d)`` points and a ridge that may be
+    traced: ``L L^T = Sigma + lambda I``, ``lambda = ridge tr(Sigma) / d`` (1 if
+    ``tr Sigma = 0``), ``Sigma`` the ensemble covariance with the ``N - 1`` denominator."""
+    n, d = x.shape
     m = jnp.mean(x, axis=0)
     xc = x - m
     cov = jnp.matmul(xc.T, xc, precision=_HIGHEST) / max(n - 1, 1)

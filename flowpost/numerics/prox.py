@@ -43,7 +43,7 @@ from __future__ import annotations
 import math
 import numbers
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, cast
 
 import jax
 import jax.numpy as jnp
@@ -72,7 +72,7 @@ __all__ = [
 # ---------------------------------------------------------------------------
 
 
-def _as_points(v: Any, name: str) -> jax.Array:
+def as_points(v: Any, name: str) -> jax.Array:
     v = jnp.asarray(v)
     if not jnp.issubdtype(v.dtype, jnp.floating):
         raise TypeError(f"{name}: expected a floating-point array; got dtype {v.dtype}")
@@ -137,9 +137,7 @@ def _bound(name: str, value: Any) -> float | tuple[float, ...]:
 
 def _check_dim(name: str, length: int, d: int) -> None:
     if length != d:
-        raise ValueError(
-            f"{name}: expected {d} entries (one per coordinate of the points); got {length}"
-        )
+        raise ValueError(f"{name}: expected {d} entries (one per coordinate of the points); got {length}")
 
 
 # ---------------------------------------------------------------------------
@@ -171,7 +169,7 @@ class ProxTerm:
         -------
         array of the shape and dtype of ``v``
         """
-        v = _as_points(v, "v")
+        v = as_points(v, "v")
         return self._map(v, _as_step(h, v.dtype))
 
     def map(self, v: jax.Array, h: float | jax.Array) -> jax.Array:
@@ -180,7 +178,7 @@ class ProxTerm:
 
     def value(self, x: jax.Array) -> jax.Array:
         """:math:`g` of each row of ``x``: shape ``(N,)`` for ``(N, d)`` input, ``()`` for ``(d,)``."""
-        x = _as_points(x, "x")
+        x = as_points(x, "x")
         return self._value(x)
 
     def _map(self, v: jax.Array, h: jax.Array) -> jax.Array:  # pragma: no cover - abstract
@@ -333,7 +331,7 @@ class GroupL1Penalty(ProxTerm):
         :math:`\lambda \ge 0`, finite (a traced leaf).
     """
 
-    groups: tuple = static(())
+    groups: tuple = static(default=())
     weight: float = 1.0
 
     def __post_init__(self) -> None:
@@ -354,8 +352,7 @@ class GroupL1Penalty(ProxTerm):
             object.__setattr__(self, "groups", ids)
             return
         if any(is_int):
-            raise fail("groups", "either all integers (group ids) or all index tuples, not a mix",
-                       self.groups)
+            raise fail("groups", "either all integers (group ids) or all index tuples, not a mix", self.groups)
         norm: list[tuple[int, ...]] = []
         seen: set[int] = set()
         for k, g in enumerate(groups):
@@ -453,7 +450,7 @@ class UserProx(ProxTerm):
     """
 
     prox: Callable[[jax.Array, jax.Array], jax.Array] = static()
-    value_fn: Callable[[jax.Array], jax.Array] | None = static(None)
+    value_fn: Callable[[jax.Array], jax.Array] | None = static(default=None)
 
     def __post_init__(self) -> None:
         callable_value("prox", self.prox, "a callable prox(v, h)")
@@ -475,8 +472,7 @@ class UserProx(ProxTerm):
     def _value(self, x):
         if self.value_fn is None:
             raise NotImplementedError(
-                "this UserProx was built without value_fn, so g(x) is not available; "
-                "pass value_fn=... to UserProx"
+                "this UserProx was built without value_fn, so g(x) is not available; pass value_fn=... to UserProx"
             )
 
         value_fn = self.value_fn
@@ -484,12 +480,26 @@ class UserProx(ProxTerm):
         def one(u):
             out = jnp.asarray(value_fn(u))
             if out.shape != ():
-                raise ValueError(
-                    f"value_fn: expected a function returning a scalar; got shape {out.shape}"
-                )
+                raise ValueError(f"value_fn: expected a function returning a scalar; got shape {out.shape}")
             return out.astype(u.dtype)
 
         return jax.vmap(one)(x) if x.ndim == 2 else one(x)
+
+
+def as_prox_term(name: str, value: Any) -> ProxTerm:
+    """``value`` as a proximal term: a :class:`ProxTerm` as it is, a user callable
+    ``prox(v, h)`` wrapped in :class:`UserProx`; anything else is refused naming ``name``."""
+    if isinstance(value, ProxTerm):
+        return value
+    if callable(value) and not isinstance(value, type):
+        return UserProx(cast("Callable[[jax.Array, jax.Array], jax.Array]", value))
+    raise fail(
+        name,
+        "a proximal term from flowpost.prox (e.g. flowpost.prox.L1Penalty(2.0), "
+        "flowpost.prox.Box(0.0, 1.0)) or a callable prox(v, h)",
+        value,
+        TypeError,
+    )
 
 
 @pytree_dataclass
@@ -560,7 +570,7 @@ def prox_by_solver(
     """
     callable_value("g", g, "a callable g(x) -> scalar")
     instance("solver", solver, InnerSolver, "an InnerSolver")
-    v = _as_points(v, "v")
+    v = as_points(v, "v")
     h = _as_step(h, v.dtype)
 
     def one(u):

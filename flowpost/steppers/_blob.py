@@ -49,9 +49,10 @@ through :mod:`flowpost.numerics` (memory ``O(block * N)``).
 
 Source: "A blob method for diffusion" (Calc. Var. PDE, 2019).
 """
+
 from __future__ import annotations
 
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -61,6 +62,9 @@ from .._pytree import pytree_dataclass, static
 from .._validate import choice, integer, positive
 from ..numerics import DEFAULT_BLOCK, RBF, grad_log_kde, kernel_sums, normal_reference_bandwidth, whiten
 from .base import ScoredState, Stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["BlobFlow"]
 
@@ -108,8 +112,8 @@ class BlobFlow(Stepper):
     step_size: float = 1e-2
     bandwidth: float | None = None
     bandwidth_factor: float = 1.0
-    form: str = static("energy")
-    block: int = static(DEFAULT_BLOCK)
+    form: str = static(default="energy")
+    block: int = static(default=DEFAULT_BLOCK)
 
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
     reductions: ClassVar[dict[str, str]] = {"bandwidth": "mean", "grad_evals": "sum"}
@@ -122,7 +126,7 @@ class BlobFlow(Stepper):
         object.__setattr__(self, "form", choice("form", self.form, ("energy", "density")))
         object.__setattr__(self, "block", integer("block", self.block, minimum=1))
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> ScoredState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> ScoredState:
         if x.shape[0] < 2:
             raise ValueError(
                 f"init: expected at least 2 particles for BlobFlow (it interacts them); got N={x.shape[0]}"
@@ -156,7 +160,7 @@ class BlobFlow(Stepper):
             g = solve_triangular(w.chol.T, g.T, lower=False).T
         return g, eps
 
-    def advance(self, target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
+    def advance(self, target: Target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
         x = state.x
         h = jnp.asarray(h, x.dtype)
         g, eps = self.entropy_gradient(x)

@@ -41,9 +41,10 @@ generated and multiplied in row blocks of ``block`` particles so memory stays
 Source: "Affine invariant interacting Langevin dynamics for Bayesian inference" (SIAM J.
 Appl. Dyn. Syst., 2020).
 """
+
 from __future__ import annotations
 
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -53,6 +54,9 @@ from .._pytree import pytree_dataclass, static
 from .._validate import integer, positive
 from ..numerics import map_row_blocks
 from .base import ParticleState, Stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["EnsembleLangevin"]
 
@@ -90,7 +94,7 @@ class EnsembleLangevin(Stepper):
     """
 
     step_size: float = 1e-2
-    block: int = static(512)
+    block: int = static(default=512)
 
     stochastic = True
     reductions: ClassVar[dict[str, str]] = {"grad_evals": "sum"}
@@ -99,15 +103,14 @@ class EnsembleLangevin(Stepper):
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
         object.__setattr__(self, "block", integer("block", self.block, minimum=1))
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> ParticleState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> ParticleState:
         if x.shape[0] < 2:
             raise ValueError(
-                f"init: expected at least 2 particles for EnsembleLangevin (it interacts them); "
-                f"got N={x.shape[0]}"
+                f"init: expected at least 2 particles for EnsembleLangevin (it interacts them); got N={x.shape[0]}"
             )
         return ParticleState(x=x)
 
-    def advance(self, target, state: ParticleState, key: jax.Array, h: jax.Array) -> tuple[ParticleState, dict]:
+    def advance(self, target: Target, state: ParticleState, key: jax.Array, h: jax.Array) -> tuple[ParticleState, dict]:
         x = state.x
         n, d = x.shape
         dtype = x.dtype

@@ -49,7 +49,10 @@ entropy part, Lie order), so the entropy parts :class:`GaussianEntropy` and
 :class:`KernelEntropy` (steppers of the one protocol) can also be used in a user's own
 composition.
 """
+
 from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
 
 import jax
 import jax.numpy as jnp
@@ -57,9 +60,12 @@ import jax.numpy as jnp
 from .._pytree import pytree_dataclass, static, unchecked
 from .._validate import choice, fail, integer, positive
 from ..numerics import DEFAULT_BLOCK, InnerSolver, log_kde, minimise, normal_reference_bandwidth, whiten
-from ._parts import Explicit, Part, PositionState
+from ._parts import Explicit, Part, PositionState, _PositionPart
 from ._solver_defaults import check_solver
 from ._split import Recipe, Split, compose
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["ForwardBackward", "GaussianEntropy", "KernelEntropy"]
 
@@ -85,7 +91,7 @@ class GaussianEntropy(Part):
     def __post_init__(self):
         self._check_fraction()
 
-    def start(self, target, x, key):
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> PositionState:
         n, d = x.shape
         if n <= d:
             raise ValueError(
@@ -95,7 +101,9 @@ class GaussianEntropy(Part):
             )
         return PositionState(x=x)
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         n = x.shape[0]
         m = jnp.mean(x, axis=0)
@@ -111,7 +119,7 @@ class GaussianEntropy(Part):
 
 
 @pytree_dataclass
-class KernelEntropy(Part):
+class KernelEntropy(_PositionPart):
     """Wasserstein proximal step of the negative entropy with a kernel-density inner solve.
 
     Solves ``min_Y sum_i log mu_hat_Y(y_i) + sum_i |y_i - x_i|^2 / (2t)`` warm-started at
@@ -133,9 +141,9 @@ class KernelEntropy(Part):
     """
 
     bandwidth: float | None = None
-    whitened: bool = static(True)
+    whitened: bool = static(default=True)
     solver: InnerSolver = InnerSolver(tol=1e-4, max_iters=100)
-    block: int = static(DEFAULT_BLOCK)
+    block: int = static(default=DEFAULT_BLOCK)
     fraction: float = 1.0
 
     stochastic = False
@@ -152,17 +160,18 @@ class KernelEntropy(Part):
         if not isinstance(self.whitened, bool):
             raise fail("whitened", "True or False", self.whitened, TypeError)
 
-    def start(self, target, x, key):
-        return PositionState(x=x)
-
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         x0 = jax.lax.stop_gradient(x)
         if self.whitened:
             to_z = whiten(x0).apply
         else:
+
             def to_z(a):
                 return a
+
         z0 = to_z(x0)
         if self.bandwidth is None:
             b = jax.lax.stop_gradient(normal_reference_bandwidth(z0))
@@ -213,7 +222,7 @@ class ForwardBackward(Recipe):
     """
 
     step_size: float = 1e-2
-    entropy: str = static("gaussian")
+    entropy: str = static(default="gaussian")
     bandwidth: float | None = None
     solver: InnerSolver | None = None
 
@@ -224,8 +233,11 @@ class ForwardBackward(Recipe):
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
         choice("entropy", self.entropy, ("gaussian", "kernel"))
         if self.entropy == "gaussian" and (self.bandwidth is not None or self.solver is not None):
-            raise fail("bandwidth / solver", "None with entropy='gaussian' (they are used with "
-                       "entropy='kernel' only)", (self.bandwidth, self.solver))
+            raise fail(
+                "bandwidth / solver",
+                "None with entropy='gaussian' (they are used with entropy='kernel' only)",
+                (self.bandwidth, self.solver),
+            )
         if self.bandwidth is not None:
             object.__setattr__(self, "bandwidth", positive("bandwidth", self.bandwidth))
         check_solver("solver", self.solver)

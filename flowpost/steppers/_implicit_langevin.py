@@ -53,6 +53,7 @@ Built as the Lie splitting ``Split((Proximal(precondition=True), HeatFlow()))``.
 
 Source: "Proximal Markov chain Monte Carlo algorithms" (Statistics and Computing, 2016).
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
@@ -119,8 +120,8 @@ class ImplicitLangevin(Recipe):
 
     step_size: float = 1e-2
     solver: InnerSolver | None = None
-    prox: Callable[[jax.Array, jax.Array], jax.Array] | None = static(None)
-    precondition: bool = static(True)
+    prox: Callable[[jax.Array, jax.Array], jax.Array] | None = static(default=None)
+    precondition: bool = static(default=True)
 
     stochastic = True
     reductions = Proximal.reductions

@@ -81,18 +81,23 @@ error is ``|mean_i g_i| / (1 + h / s2)`` with ``g_i`` the final gradient of ``J`
 
 Source: "The variational formulation of the Fokker-Planck equation" (SIAM J. Math. Anal., 1998).
 """
+
 from __future__ import annotations
 
-from typing import ClassVar, NamedTuple
+from typing import TYPE_CHECKING, ClassVar, NamedTuple
 
 import jax
 import jax.numpy as jnp
 
 from .._pytree import pytree_dataclass, static
 from .._validate import boolean, integer, positive
-from ..numerics import DEFAULT_BLOCK, InnerSolver, Whitening, log_kde, minimise, normal_reference_bandwidth
+from ..numerics import DEFAULT_BLOCK, InnerSolver, log_kde, minimise, normal_reference_bandwidth
+from ..numerics._whitening import ridged_whitening
 from ._solver_defaults import check_solver, default_solver
 from .base import Stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["JKO", "JKOState"]
 
@@ -116,20 +121,6 @@ def _preconditioner(chol: jax.Array, h: jax.Array, b: jax.Array) -> jax.Array:
     lam, vec = jnp.linalg.eigh(cov)
     scale = (1.0 + h * (1.0 + 1.0 / b**2) / lam) ** -0.5
     return jax.lax.stop_gradient(jnp.matmul(vec * scale, vec.T, precision=_HIGHEST))
-
-
-def _whitening(x: jax.Array, ridge: jax.Array) -> Whitening:
-    """The whitening of :func:`flowpost.numerics.whiten` with a traced ``ridge``:
-    ``L L^T = Sigma + lambda I``, ``lambda = ridge tr(Sigma) / d`` (1 if ``tr Sigma = 0``),
-    ``Sigma`` the ensemble covariance with the ``N - 1`` denominator."""
-    n, d = x.shape
-    m = jnp.mean(x, axis=0)
-    xc = x - m
-    cov = jnp.matmul(xc.T, xc, precision=_HIGHEST) / max(n - 1, 1)
-    tr = jnp.trace(cov)
-    lam = jnp.where(tr > 0, ridge * tr / d, jnp.ones_like(tr))
-    chol = jnp.linalg.cholesky(cov + lam * jnp.eye(d, dtype=x.dtype))
-    return Whitening(mean=m, chol=chol)
 
 
 @pytree_dataclass
@@ -198,12 +189,17 @@ class JKO(Stepper):
     solver: InnerSolver | None = None
     bandwidth: float | None = None
     ridge: float | None = None
-    block: int = static(DEFAULT_BLOCK)
-    precondition: bool = static(True)
+    block: int = static(default=DEFAULT_BLOCK)
+    precondition: bool = static(default=True)
 
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
-    reductions: ClassVar[dict[str, str]] = {"grad_evals": "sum", "inner_iters": "mean", "inner_residual": "max",
-                  "inner_capped": "sum", "kde_bandwidth": "mean"}
+    reductions: ClassVar[dict[str, str]] = {
+        "grad_evals": "sum",
+        "inner_iters": "mean",
+        "inner_residual": "max",
+        "inner_capped": "sum",
+        "kde_bandwidth": "mean",
+    }
 
     def __post_init__(self):
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
@@ -215,7 +211,7 @@ class JKO(Stepper):
         object.__setattr__(self, "block", integer("block", self.block, minimum=1))
         boolean("precondition", self.precondition)
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> JKOState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> JKOState:
         n, d = x.shape
         if n < 2 or n <= d:
             raise ValueError(
@@ -229,11 +225,11 @@ class JKO(Stepper):
             return jnp.asarray(self.ridge, dtype)
         return 16 * jnp.finfo(dtype).eps * jnp.ones((), dtype)
 
-    def advance(self, target, state: JKOState, key: jax.Array, h: jax.Array) -> tuple[JKOState, dict]:
+    def advance(self, target: Target, state: JKOState, key: jax.Array, h: jax.Array) -> tuple[JKOState, dict]:
         x = state.x
         h = jnp.asarray(h, x.dtype)
         solver = self.solver if self.solver is not None else default_solver(x.dtype, JKO_MAX_ITERS)
-        white = jax.tree.map(jax.lax.stop_gradient, _whitening(x, self._ridge(x.dtype)))
+        white = jax.tree.map(jax.lax.stop_gradient, ridged_whitening(x, self._ridge(x.dtype)))
         if self.bandwidth is None:
             b = jax.lax.stop_gradient(normal_reference_bandwidth(white.apply(x)))
         else:
@@ -249,8 +245,7 @@ class JKO(Stepper):
 
         if self.precondition:
             a = _preconditioner(white.chol, h, b)
-            u, rep = minimise(solver, lambda u: objective(jnp.matmul(u, a, precision=_HIGHEST)),
-                              jnp.zeros_like(x))
+            u, rep = minimise(solver, lambda u: objective(jnp.matmul(u, a, precision=_HIGHEST)), jnp.zeros_like(x))
             y = x + jnp.matmul(u, a, precision=_HIGHEST)
         else:
             step, rep = minimise(solver, objective, jnp.zeros_like(x))

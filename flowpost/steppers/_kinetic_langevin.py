@@ -24,6 +24,7 @@ Built as the Strang :class:`~flowpost.steppers.Split` scheme
 ``state.x`` the positions (all a result reports), ``state.v`` the momentum (drawn from
 ``N(0, I)`` at the start); the kick's state keeps the score for the next step.
 """
+
 from __future__ import annotations
 
 from .._pytree import pytree_dataclass, unchecked

@@ -16,6 +16,7 @@ potential, then the exact heat flow for the same time.
 Source: "Exponential convergence of Langevin distributions and their discrete
 approximations" (Bernoulli, 1996).
 """
+
 from __future__ import annotations
 
 from .._pytree import pytree_dataclass, unchecked

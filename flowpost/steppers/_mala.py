@@ -36,6 +36,7 @@ a constant step at ``step_size``.
 Source: "Exponential convergence of Langevin distributions and their discrete
 approximations" (Bernoulli, 1996).
 """
+
 from __future__ import annotations
 
 from typing import TYPE_CHECKING, ClassVar
@@ -50,6 +51,7 @@ from .base import ScoredState, Stepper
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..engine._controllers import Controller
+    from ..model._target import Target
 
 __all__ = ["MALA"]
 
@@ -118,15 +120,20 @@ class MALA(Stepper):
         from ..engine._controllers import AcceptanceTarget, Constant  # the engine imports the steppers
 
         if self.tune_steps > 0:
-            return unchecked(AcceptanceTarget, h=self.step_size, accept=self.target_accept,
-                             adapt_steps=self.tune_steps, gain=self.tune_gain)
+            return unchecked(
+                AcceptanceTarget,
+                h=self.step_size,
+                accept=self.target_accept,
+                adapt_steps=self.tune_steps,
+                gain=self.tune_gain,
+            )
         return unchecked(Constant, h=self.step_size)
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> ScoredState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> ScoredState:
         logp, score = target.value_and_score(x)
         return ScoredState(x=x, logp=logp, score=score)
 
-    def advance(self, target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
+    def advance(self, target: Target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
         x, logp, score = state.x, state.logp, state.score
         dtype = x.dtype
         h = jnp.asarray(h, dtype)

@@ -27,10 +27,11 @@ Sources: the splitting itself, "On the construction and comparison of difference
 algorithms" (Statistics and Computing, 2016); the momentum pieces, "Rational construction of
 stochastic numerical methods for molecular sampling" (AMRX, 2013).
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
-from typing import Any, ClassVar, NamedTuple
+from typing import TYPE_CHECKING, Any, ClassVar, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -38,9 +39,12 @@ import jax.numpy as jnp
 from .._pytree import pytree_dataclass, static
 from .._validate import callable_value, fail, positive
 from ..numerics import InnerSolver, minimise
-from ..numerics.prox import ProxTerm, UserProx
+from ..numerics.prox import as_prox_term
 from ._solver_defaults import check_solver, default_solver
 from .base import Stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = [
     "Drift",
@@ -101,8 +105,9 @@ def _term_key(term: TermSpec, owner: str) -> tuple[str, ...] | None:
         return (term,)
     if isinstance(term, (tuple, list)) and term and all(isinstance(t, str) for t in term):
         return tuple(term)
-    raise fail(f"{owner}.term", "None (the whole log-density), a term name or a non-empty tuple of "
-               "term names", term, TypeError)
+    raise fail(
+        f"{owner}.term", "None (the whole log-density), a term name or a non-empty tuple of term names", term, TypeError
+    )
 
 
 def _check_terms(target, key: tuple[str, ...] | None, owner: str) -> None:
@@ -130,7 +135,7 @@ def _term_one(target, key: tuple[str, ...] | None) -> Callable[[jax.Array], jax.
     return one
 
 
-def term_gradient(target, key: tuple[str, ...] | None, x: jax.Array) -> jax.Array:
+def term_gradient(target: Target, key: tuple[str, ...] | None, x: jax.Array) -> jax.Array:
     """Gradient of the term(s) ``key`` (``None``: the whole log-density) at every particle."""
     if key is None:
         return target.score(x)
@@ -161,7 +166,14 @@ class Part(Stepper):
 
 def _normalised_term(self, owner: str) -> None:
     key = _term_key(self.term, owner)
-    object.__setattr__(self, "term", key if key is None or len(key) > 1 else key[0])
+    object.__setattr__(self, "term", key if key is None or len(key) != 1 else key[0])  # key is never empty
+
+
+class _PositionPart(Part):
+    """A part whose state is the positions alone, as they come."""
+
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> PositionState:
+        return PositionState(x=x)
 
 
 @pytree_dataclass
@@ -176,7 +188,7 @@ class Explicit(Part):
         Share of the step (the part acts for ``fraction * h``).
     """
 
-    term: TermSpec = static(None)
+    term: TermSpec = static(default=None)
     fraction: float = 1.0
 
     stochastic = False
@@ -186,18 +198,20 @@ class Explicit(Part):
         _normalised_term(self, "Explicit")
         self._check_fraction()
 
-    def start(self, target, x, key):
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> PositionState:
         _check_terms(target, _term_key(self.term, "Explicit"), "Explicit")
         return PositionState(x=x)
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         g = term_gradient(target, _term_key(self.term, "Explicit"), x)
         return PositionState(x=x + h * g), {"grad_evals": _one(x)}
 
 
 @pytree_dataclass
-class HeatFlow(Part):
+class HeatFlow(_PositionPart):
     """Exact heat flow for time ``t``: ``x <- x + sqrt(2t) xi``, ``xi ~ N(0, I)`` (the entropy
     piece of the flow, represented by noise)."""
 
@@ -209,16 +223,15 @@ class HeatFlow(Part):
     def __post_init__(self):
         self._check_fraction()
 
-    def start(self, target, x, key):
-        return PositionState(x=x)
-
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         return PositionState(x=x + jnp.sqrt(2 * h) * _normal(key, x)), {"grad_evals": _zero(x)}
 
 
 @pytree_dataclass
-class ExactMap(Part):
+class ExactMap(_PositionPart):
     """A user-supplied exact flow map ``x <- fn(x, t)`` of one piece of the flow.
 
     Parameters
@@ -234,7 +247,7 @@ class ExactMap(Part):
     ``ExactMap(lambda x, t: m + jnp.exp(-t / s2) * (x - m))``.
     """
 
-    fn: Callable[[jax.Array, jax.Array], jax.Array] | None = static(None)
+    fn: Callable[[jax.Array, jax.Array], jax.Array] | None = static(default=None)
     fraction: float = 1.0
 
     stochastic = False
@@ -244,10 +257,9 @@ class ExactMap(Part):
         callable_value("ExactMap.fn", self.fn, "a callable fn(x, t) -> x")
         self._check_fraction()
 
-    def start(self, target, x, key):
-        return PositionState(x=x)
-
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         assert self.fn is not None
         out = jnp.asarray(self.fn(x, h))
@@ -260,7 +272,7 @@ class _MomentumPart(Part):
     moves_position: ClassVar[bool] = False
     uses_momentum: ClassVar[bool] = True
 
-    def start(self, target, x, key):
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> MomentumState:
         return MomentumState(x=x, v=_normal(key, x))
 
 
@@ -281,7 +293,7 @@ class Kick(_MomentumPart):
         Share of the step.
     """
 
-    term: TermSpec = static(None)
+    term: TermSpec = static(default=None)
     fraction: float = 1.0
 
     stochastic = False
@@ -291,12 +303,14 @@ class Kick(_MomentumPart):
         _normalised_term(self, "Kick")
         self._check_fraction()
 
-    def start(self, target, x, key):
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> KickState:
         key_t = _term_key(self.term, "Kick")
         _check_terms(target, key_t, "Kick")
         return KickState(x=x, v=_normal(key, x), grad=term_gradient(target, key_t, x))
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[KickState, dict[str, jax.Array]]:
         x = state.x
         if state.grad is None:
             g, n = term_gradient(target, _term_key(self.term, "Kick"), x), _one(x)
@@ -318,7 +332,9 @@ class Drift(_MomentumPart):
     def __post_init__(self):
         self._check_fraction()
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[MomentumState, dict[str, jax.Array]]:
         return MomentumState(x=state.x + h * state.v, v=state.v), {"grad_evals": _zero(state.x)}
 
 
@@ -346,7 +362,9 @@ class Friction(_MomentumPart):
         object.__setattr__(self, "gamma", positive("Friction.gamma", self.gamma))
         self._check_fraction()
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[MomentumState, dict[str, jax.Array]]:
         v = state.v
         gt = jnp.asarray(self.gamma, v.dtype) * h
         v = jnp.exp(-gt) * v + jnp.sqrt(-jnp.expm1(-2 * gt)) * _normal(key, v)
@@ -405,40 +423,46 @@ class Proximal(Part):
     the running total, reported as ``inner_capped_total``.
     """
 
-    term: TermSpec = static(None)
+    term: TermSpec = static(default=None)
     prox: Any = None
     solver: InnerSolver | None = None
-    precondition: bool = static(False)
+    precondition: bool = static(default=False)
     fraction: float = 1.0
 
     stochastic = False
-    reductions = {"grad_evals": "sum", "inner_iters": "mean", "inner_iters_max": "max",
-                  "inner_residual": "max", "inner_capped": "sum"}
+    reductions = {
+        "grad_evals": "sum",
+        "inner_iters": "mean",
+        "inner_iters_max": "max",
+        "inner_residual": "max",
+        "inner_capped": "sum",
+    }
 
     def __post_init__(self):
         _normalised_term(self, "Proximal")
-        if self.prox is not None and not isinstance(self.prox, ProxTerm):
-            if callable(self.prox) and not isinstance(self.prox, type):
-                object.__setattr__(self, "prox", UserProx(self.prox))
-            else:
-                raise fail("Proximal.prox", "a proximal term from flowpost.prox (e.g. L1Penalty(1.0), "
-                           "Box(0, 1)) or a callable prox(v, h)", self.prox, TypeError)
+        if self.prox is not None:
+            object.__setattr__(self, "prox", as_prox_term("Proximal.prox", self.prox))
         check_solver("Proximal.solver", self.solver)
         if not isinstance(self.precondition, bool):
             raise fail("Proximal.precondition", "True or False", self.precondition, TypeError)
         self._check_fraction()
 
-    def start(self, target, x, key):
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> ProximalState:
         _check_terms(target, _term_key(self.term, "Proximal"), "Proximal")
         return ProximalState(x=x, capped_total=jnp.zeros((), jnp.int32))
 
-    def backward(self, target, x: jax.Array, h: jax.Array) -> tuple[jax.Array, dict]:
+    def backward(self, target: Target, x: jax.Array, h: jax.Array) -> tuple[jax.Array, dict]:
         """The backward step for every particle and its stats."""
         if self.prox is not None:
             y = jnp.asarray(self.prox(x, h)).astype(x.dtype)
             zero = _zero(x)
-            return y, {"grad_evals": zero, "inner_iters": zero, "inner_iters_max": zero,
-                       "inner_residual": zero, "inner_capped": jnp.zeros((), jnp.int32)}
+            return y, {
+                "grad_evals": zero,
+                "inner_iters": zero,
+                "inner_iters_max": zero,
+                "inner_residual": zero,
+                "inner_capped": jnp.zeros((), jnp.int32),
+            }
         log_t = _term_one(target, _term_key(self.term, "Proximal"))
         solver = self.solver if self.solver is not None else default_solver(x.dtype)
         n, d = x.shape
@@ -467,9 +491,11 @@ class Proximal(Part):
             "inner_capped": jnp.sum(~rep.converged).astype(jnp.int32),
         }
 
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[ProximalState, dict[str, jax.Array]]:
         y, stats = self.backward(target, state.x, h)
         return ProximalState(x=y, capped_total=state.capped_total + stats["inner_capped"]), stats
 
-    def report(self, state) -> dict:
+    def report(self, state: ProximalState) -> dict[str, Any]:
         return {"inner_capped_total": int(state.capped_total)}

@@ -35,32 +35,28 @@ Both variants cost one score evaluation of ``f`` per step, and both are splittin
 ``moreau`` is ``Split((MoreauDrift(prox, smoothing), HeatFlow()))``, ``forward_prox`` is
 ``Split((HeatFlow(), Explicit(), Proximal(prox=g)))``.
 """
+
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
+import jax
 import jax.numpy as jnp
 
 from .._pytree import pytree_dataclass, static, unchecked
 from .._validate import choice, fail, positive
-from ..numerics.prox import ProxTerm, UserProx
-from ._parts import Explicit, HeatFlow, Part, PositionState, Proximal
+from ..numerics.prox import as_prox_term
+from ._parts import Explicit, HeatFlow, PositionState, Proximal, _PositionPart
 from ._split import Recipe, Split, compose
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["MoreauDrift", "ProximalLangevin"]
 
 
-def _as_prox(name: str, prox: Any) -> ProxTerm:
-    if isinstance(prox, ProxTerm):
-        return prox
-    if callable(prox) and not isinstance(prox, type):
-        return UserProx(prox)
-    raise fail(name, "a proximal term from flowpost.prox (e.g. flowpost.prox.L1Penalty(2.0), "
-               "flowpost.prox.Box(0.0, 1.0)) or a callable prox(v, h)", prox, TypeError)
-
-
 @pytree_dataclass
-class MoreauDrift(Part):
+class MoreauDrift(_PositionPart):
     r"""Forward step on ``f - g_lam`` (``g_lam`` the Moreau envelope of a proximal term ``g``):
 
         x <- x + t [ grad f(x) - (x - prox_{lam g}(x)) / lam ],
@@ -78,15 +74,14 @@ class MoreauDrift(Part):
     reductions = {"grad_evals": "sum"}
 
     def __post_init__(self):
-        object.__setattr__(self, "prox", _as_prox("prox", self.prox))
+        object.__setattr__(self, "prox", as_prox_term("prox", self.prox))
         if self.smoothing is not None:
             object.__setattr__(self, "smoothing", positive("smoothing", self.smoothing))
         self._check_fraction()
 
-    def start(self, target, x, key):
-        return PositionState(x=x)
-
-    def advance(self, target, state, key, h):
+    def advance(
+        self, target: Target, state: Any, key: jax.Array, h: jax.Array
+    ) -> tuple[PositionState, dict[str, jax.Array]]:
         x = state.x
         lam = h if self.smoothing is None else jnp.asarray(self.smoothing, x.dtype)
         drift = target.score(x) - (x - self.prox(x, lam)) / lam
@@ -124,7 +119,7 @@ class ProximalLangevin(Recipe):
     step_size: float = 1e-3
     prox: Any = None
     smoothing: float | None = None
-    variant: str = static("moreau")
+    variant: str = static(default="moreau")
 
     stochastic = True
     reductions = Proximal.reductions
@@ -132,14 +127,21 @@ class ProximalLangevin(Recipe):
     def __post_init__(self):
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
         if self.prox is None:
-            raise fail("prox", "the nonsmooth part as a proximal term, e.g. flowpost.prox.L1Penalty(2.0) "
-                       "or flowpost.prox.Box(0.0, 1.0)", None)
-        object.__setattr__(self, "prox", _as_prox("prox", self.prox))
+            raise fail(
+                "prox",
+                "the nonsmooth part as a proximal term, e.g. flowpost.prox.L1Penalty(2.0) "
+                "or flowpost.prox.Box(0.0, 1.0)",
+                None,
+            )
+        object.__setattr__(self, "prox", as_prox_term("prox", self.prox))
         choice("variant", self.variant, ("moreau", "forward_prox"))
         if self.smoothing is not None:
             if self.variant != "moreau":
-                raise fail("smoothing", "None with variant='forward_prox' (it is used with "
-                           "variant='moreau' only)", self.smoothing)
+                raise fail(
+                    "smoothing",
+                    "None with variant='forward_prox' (it is used with variant='moreau' only)",
+                    self.smoothing,
+                )
             object.__setattr__(self, "smoothing", positive("smoothing", self.smoothing))
 
     @property

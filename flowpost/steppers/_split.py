@@ -43,10 +43,11 @@ Stats: the union of the parts' stats. Within one step the values of a stat repor
 several parts (or by one part acting twice) add up, except ``"max"`` stats, which take the
 largest; over a window each stat reduces as the parts declare.
 """
+
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -55,6 +56,9 @@ from .._pytree import pytree_dataclass, static, unchecked
 from .._validate import choice, fail, positive
 from ._parts import Part
 from .base import Stepper, check_stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["Recipe", "Split", "SplitState", "compose"]
 
@@ -121,7 +125,7 @@ class Split(Stepper):
 
     parts: Sequence[Stepper] = ()
     step_size: float = 1e-2
-    order: str = static("lie")
+    order: str = static(default="lie")
 
     def __post_init__(self):
         parts = self.parts
@@ -151,8 +155,7 @@ class Split(Stepper):
         for i, p in enumerate(self.parts):
             for k, r in p.reductions.items():
                 if out.setdefault(k, r) != r:
-                    raise fail(f"parts[{i}].reductions", f"'{k}' reduced as '{out[k]}' like the other parts",
-                               r)
+                    raise fail(f"parts[{i}].reductions", f"'{k}' reduced as '{out[k]}' like the other parts", r)
         return out
 
     @property
@@ -191,12 +194,14 @@ class Split(Stepper):
         return tuple(out)
 
     # ----- protocol -------------------------------------------------------------------------
-    def start(self, target, x, key) -> SplitState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> SplitState:
         states = tuple(p.start(target, x, jax.random.fold_in(key, i + 1)) for i, p in enumerate(self.parts))
         v = jax.random.normal(key, x.shape, x.dtype) if self.uses_momentum else None
         return SplitState(x=x, v=v, parts=tuple(_strip(s) for s in states))
 
-    def advance(self, target, state: SplitState, key, h):
+    def advance(
+        self, target: Target, state: SplitState, key: jax.Array, h: jax.Array
+    ) -> tuple[SplitState, dict[str, jax.Array]]:
         x, v = state.x, state.v
         states = list(state.parts)
         stats: dict[str, Any] = {"grad_evals": jnp.zeros((), x.dtype)}
@@ -228,7 +233,6 @@ class Split(Stepper):
         return out
 
 
-
 class Recipe(Stepper):
     """A named stepper defined as a :class:`Split` of parts (its ``scheme``): ``start``,
     ``advance`` and ``report`` are the scheme's. Subclasses declare ``stochastic`` and
@@ -239,10 +243,12 @@ class Recipe(Stepper):
     def scheme(self) -> Split:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def start(self, target, x, key) -> SplitState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> SplitState:
         return self.scheme.start(target, x, key)
 
-    def advance(self, target, state: SplitState, key, h):
+    def advance(
+        self, target: Target, state: SplitState, key: jax.Array, h: jax.Array
+    ) -> tuple[SplitState, dict[str, jax.Array]]:
         return self.scheme.advance(target, state, key, h)
 
     def report(self, state: SplitState) -> dict:

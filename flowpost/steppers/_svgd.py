@@ -39,9 +39,10 @@ target depend on the start and the bandwidth.
 Source: "Stein variational gradient descent: a general purpose Bayesian inference
 algorithm" (NeurIPS, 2016).
 """
+
 from __future__ import annotations
 
-from typing import Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import jax
 import jax.numpy as jnp
@@ -50,6 +51,9 @@ from .._pytree import pytree_dataclass, static
 from .._validate import fail, integer, positive
 from ..numerics import DEFAULT_BLOCK, IMQ, RBF, RadialKernel, interaction_means
 from .base import ScoredState, Stepper
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..model._target import Target
 
 __all__ = ["SVGD"]
 
@@ -109,8 +113,8 @@ class SVGD(Stepper):
 
     step_size: float = 1e-2
     kernel: RadialKernel = RBF()
-    block: int = static(DEFAULT_BLOCK)
-    batch: int | None = static(None)
+    block: int = static(default=DEFAULT_BLOCK)
+    batch: int | None = static(default=None)
 
     stochastic = False  # deterministic (random batches aside): the monitor skips R-hat and ESS
     reductions: ClassVar[dict[str, str]] = {"kernel_scale": "mean", "grad_evals": "sum"}
@@ -122,7 +126,7 @@ class SVGD(Stepper):
         if self.batch is not None:
             object.__setattr__(self, "batch", integer("batch", self.batch, minimum=2))
 
-    def start(self, target, x: jax.Array, key: jax.Array) -> ScoredState:
+    def start(self, target: Target, x: jax.Array, key: jax.Array) -> ScoredState:
         n = x.shape[0]
         if n < 2:
             raise ValueError(f"init: expected at least 2 particles for SVGD (it interacts them); got N={n}")
@@ -131,15 +135,13 @@ class SVGD(Stepper):
         logp, score = target.value_and_score(x)
         return ScoredState(x=x, logp=logp, score=score)
 
-    def direction(self, x: jax.Array, score: jax.Array,
-                  key: jax.Array | None = None) -> tuple[jax.Array, jax.Array]:
+    def direction(self, x: jax.Array, score: jax.Array, key: jax.Array | None = None) -> tuple[jax.Array, jax.Array]:
         """The SVGD direction ``phi(x_i)`` for every particle and the kernel scale used."""
         scale = self.kernel.scale_for(x)
-        kv, grad = interaction_means(self.kernel, x, score, batch=self.batch, key=key,
-                                     block=self.block, scale=scale)
+        kv, grad = interaction_means(self.kernel, x, score, batch=self.batch, key=key, block=self.block, scale=scale)
         return kv + grad, scale
 
-    def advance(self, target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
+    def advance(self, target: Target, state: ScoredState, key: jax.Array, h: jax.Array) -> tuple[ScoredState, dict]:
         x = state.x
         h = jnp.asarray(h, x.dtype)
         phi, scale = self.direction(x, state.score, key if self.batch is not None else None)

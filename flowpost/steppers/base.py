@@ -73,6 +73,7 @@ A user's own stepper (gradient ascent with noise, written out)::
             x = x + jnp.sqrt(2 * h) * jax.random.normal(key, x.shape, x.dtype)
             return fp.ParticleState(x=x), {"grad_evals": jnp.ones((), x.dtype)}
 """
+
 from __future__ import annotations
 
 from collections.abc import Mapping
@@ -120,6 +121,9 @@ class Stepper:
     ``stochastic`` and ``reductions`` and implement ``start`` and ``advance``.
     """
 
+    # declared (without a value: check_stepper refuses a subclass that omits them) by every subclass
+    stochastic: ClassVar[bool]
+    reductions: ClassVar[Mapping[str, str]]
     moves_position: ClassVar[bool] = True
     uses_momentum: ClassVar[bool] = False
 
@@ -165,12 +169,18 @@ def check_stepper(stepper: Any, name: str = "stepper") -> None:
     declaration (``stochastic``, ``reductions``)."""
     if isinstance(stepper, type):
         raise fail(name, "a stepper instance such as flowpost.Langevin(step_size=1e-3)", stepper, TypeError)
-    missing = [m for m in ("start", "advance", "default_controller", "report")
-               if not callable(getattr(type(stepper), m, None))]
+    missing = [
+        m for m in ("start", "advance", "default_controller", "report") if not callable(getattr(type(stepper), m, None))
+    ]
     if missing:
-        raise fail(name, "an object with start(target, x, key), advance(target, state, key, h), "
-                         "default_controller() and report(state) (subclass flowpost.Stepper); "
-                         f"missing {', '.join(missing)}", stepper, TypeError)
+        raise fail(
+            name,
+            "an object with start(target, x, key), advance(target, state, key, h), "
+            "default_controller() and report(state) (subclass flowpost.Stepper); "
+            f"missing {', '.join(missing)}",
+            stepper,
+            TypeError,
+        )
     for decl, what in (("stochastic", "True or False"), ("reductions", "a mapping stat -> 'sum' | 'mean' | 'max'")):
         try:
             getattr(stepper, decl)
@@ -192,8 +202,9 @@ def check_stepper(stepper: Any, name: str = "stepper") -> None:
     try:
         jax.tree_util.tree_leaves(stepper)
     except Exception as err:  # pragma: no cover - defensive
-        raise fail(name, "a JAX pytree (decorate the class with flowpost.pytree_dataclass)", stepper,
-                   TypeError) from err
+        raise fail(
+            name, "a JAX pytree (decorate the class with flowpost.pytree_dataclass)", stepper, TypeError
+        ) from err
 
 
 def check_stats(stepper: Any, stats: Mapping[str, Any], name: str = "stepper") -> None:

@@ -18,12 +18,13 @@ a useful SBC (a few hundred datasets, a hundred particles each) compiles once an
 minutes on two cores. Uniformity of the binned ranks is tested per element with Pearson's
 chi-square test from ``scipy.stats.chisquare``.
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from functools import partial
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import jax
 import jax.numpy as jnp
@@ -33,7 +34,10 @@ import scipy.stats
 from .._validate import integer
 from ..engine._driver import evolve
 from ..model._target import Target
-from ..steppers.base import check_stepper
+from ..steppers.base import Stepper, check_stepper
+
+if TYPE_CHECKING:  # pragma: no cover - matplotlib is optional
+    from matplotlib.figure import Figure
 
 __all__ = ["CalibrationReport", "calibrate"]
 
@@ -88,19 +92,21 @@ class CalibrationReport:
         return all(p >= alpha for p in self.p_values.values()) and self.nonfinite_runs == 0
 
     def worst(self) -> tuple[str, float]:
-        name = min(self.p_values, key=self.p_values.get)
+        name = min(self.p_values, key=lambda k: self.p_values[k])
         return name, self.p_values[name]
 
     def __str__(self):
-        lines = [f"simulation-based calibration: {self.ranks.shape[0]} datasets, {self.n_draws} draws each, "
-                 f"{self.counts.shape[1]} bins"]
+        lines = [
+            f"simulation-based calibration: {self.ranks.shape[0]} datasets, {self.n_draws} draws each, "
+            f"{self.counts.shape[1]} bins"
+        ]
         for i, n in enumerate(self.names):
             lines.append(f"  {n:<14} p = {self.p_values[n]:.4f}   counts {self.counts[i].tolist()}")
         if self.nonfinite_runs:
             lines.append(f"  {self.nonfinite_runs} runs ended with non-finite particles (excluded)")
         return "\n".join(lines)
 
-    def plot(self):
+    def plot(self) -> Figure:
         """Rank histograms with the 99% band of a uniform histogram (binomial quantiles);
         needs matplotlib."""
         import matplotlib.pyplot as plt
@@ -122,8 +128,8 @@ def calibrate(
     log_p: Callable[..., Any],
     prior_draw: Callable[[jax.Array], Any],
     simulate: Callable[[jax.Array, Any], Any],
-    stepper,
-    init,
+    stepper: Stepper,
+    init: Any,
     *,
     key: jax.Array,
     n_datasets: int = 200,
@@ -182,11 +188,14 @@ def calibrate(
     bound, x0 = Target(log_p, data=example, support=support).bind(init)
     n_draws = int(x0.shape[0])
     if (n_draws + 1) % bins:
-        raise ValueError(f"init: the number of particles L = {n_draws} must make L + 1 divisible by "
-                         f"bins = {bins} (e.g. L = {bins * max(1, (n_draws + 1) // bins) - 1})")
-    layout = bound.layout
-    true_mat = jax.vmap(lambda th: jnp.concatenate(
-        [jnp.reshape(l, (-1,)) for l in layout.treedef.flatten_up_to(th)]))(thetas)
+        raise ValueError(
+            f"init: the number of particles L = {n_draws} must make L + 1 divisible by "
+            f"bins = {bins} (e.g. L = {bins * max(1, (n_draws + 1) // bins) - 1})"
+        )
+    layout = bound.bound_layout()
+    true_mat = jax.vmap(lambda th: jnp.concatenate([jnp.reshape(l, (-1,)) for l in layout.treedef.flatten_up_to(th)]))(
+        thetas
+    )
     run_keys = jax.random.split(k_run, n_datasets)
     controller = stepper.default_controller()
     ranks, finite = _ranks(stepper, controller, steps, int(batch), bound, x0, datas, true_mat, run_keys)
@@ -194,9 +203,14 @@ def calibrate(
     names = layout.element_names()
     ok = ranks[finite]
     width = (n_draws + 1) // bins
-    counts = np.stack([np.bincount(ok[:, j] // width, minlength=bins) for j in range(ranks.shape[1])]) \
-        if ok.size else np.zeros((len(names), bins), int)
-    p_values = {n: float(scipy.stats.chisquare(counts[j]).pvalue) if ok.shape[0] else float("nan")
-                for j, n in enumerate(names)}
-    return CalibrationReport(names=names, ranks=ranks, counts=counts, p_values=p_values, n_draws=n_draws,
-                             nonfinite_runs=int((~finite).sum()))
+    counts = (
+        np.stack([np.bincount(ok[:, j] // width, minlength=bins) for j in range(ranks.shape[1])])
+        if ok.size
+        else np.zeros((len(names), bins), int)
+    )
+    p_values = {
+        n: float(scipy.stats.chisquare(counts[j]).pvalue) if ok.shape[0] else float("nan") for j, n in enumerate(names)
+    }
+    return CalibrationReport(
+        names=names, ranks=ranks, counts=counts, p_values=p_values, n_draws=n_draws, nonfinite_runs=int((~finite).sum())
+    )

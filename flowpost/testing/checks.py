@@ -60,11 +60,12 @@ shortcut for the same region; giving both is an error):
     score_agreement(log_p, Region.near(point, scale=0.3, num_points=5))
     score_agreement(log_p, around=point, scale=0.3, num_points=5)       # the same points
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import jax
 import jax.numpy as jnp
@@ -74,6 +75,9 @@ from jax.flatten_util import ravel_pytree
 from .._validate import boolean, callable_value, fail, integer, non_negative, positive
 from ..model._labels import element_label, path_label
 from .region import Region, default_key
+
+if TYPE_CHECKING:  # pragma: no cover - hypothesis is a test dependency
+    from hypothesis.strategies import SearchStrategy
 
 __all__ = [
     "HealthReport",
@@ -106,7 +110,7 @@ class _Coordinate:
     flat_index: int  # index within the flattened leaf
 
 
-def _coordinates(tree, *, leading: int = 0) -> list[_Coordinate]:
+def coordinates(tree, *, leading: int = 0) -> list[_Coordinate]:
     """One entry per scalar of ``tree`` in ``ravel_pytree`` order (leaves in
     ``tree_flatten`` order, each raveled in C order). ``leading`` axes are skipped."""
     out = []
@@ -141,9 +145,7 @@ def _default_rtol(value) -> float:
 def _agree(a, b, rtol: float) -> bool:
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
-    same_nonfinite = (~np.isfinite(a)) & (~np.isfinite(b)) & (
-        (np.isnan(a) & np.isnan(b)) | (a == b)
-    )
+    same_nonfinite = (~np.isfinite(a)) & (~np.isfinite(b)) & ((np.isnan(a) & np.isnan(b)) | (a == b))
     with np.errstate(invalid="ignore"):
         close = np.abs(a - b) <= rtol * np.maximum(1.0, np.maximum(np.abs(a), np.abs(b)))
     return bool(np.all(close | same_nonfinite))
@@ -161,22 +163,24 @@ def _short(tree, digits: int = 6) -> str:
 
 def _cast64_theta(tree):
     """Every leaf of theta as a float64 array (call inside ``jax.enable_x64(True)``)."""
+
     def cast(x):
         arr = np.asarray(x)
         if arr.dtype == bool or np.issubdtype(arr.dtype, np.complexfloating):
             raise TypeError(f"theta: expected real floating leaves; got dtype {arr.dtype}")
         return jnp.asarray(arr, dtype=jnp.float64)
+
     return jax.tree_util.tree_map(cast, tree)
 
 
 def _cast64_data(tree):
     """Floating leaves of data as float64 arrays; other leaves unchanged."""
+
     def cast(x):
-        if isinstance(x, float) or (
-            hasattr(x, "dtype") and np.issubdtype(np.dtype(x.dtype), np.floating)
-        ):
+        if isinstance(x, float) or (hasattr(x, "dtype") and np.issubdtype(np.dtype(x.dtype), np.floating)):
             return jnp.asarray(x, dtype=jnp.float64)
         return x
+
     return None if tree is None else jax.tree_util.tree_map(cast, tree)
 
 
@@ -251,6 +255,7 @@ def _score_evaluator(log_p, data64, unravel, dim: int, step: float, compiled: bo
         return (f(xp) - f(xm)) / (xp[i] - xm[i])
 
     if compiled:
+
         def evaluate(x):
             value, g = jax.value_and_grad(f)(x)
             h = step * jnp.maximum(1.0, jnp.abs(x))
@@ -331,13 +336,11 @@ def score_agreement(
         dim = int(flat0.shape[0])
         if dim == 0:
             raise fail("theta", "points with at least one coordinate", points[0])
-        coords = _coordinates(first)
+        coords = coordinates(first)
         data64 = _cast64_data(data)
         out0 = jax.eval_shape(lambda t: _call(log_p, t, data64), first)
         if np.shape(out0) != ():
-            raise ValueError(
-                f"log_p: expected a scalar return value (shape ()); got shape {np.shape(out0)}"
-            )
+            raise ValueError(f"log_p: expected a scalar return value (shape ()); got shape {np.shape(out0)}")
         evaluate = _score_evaluator(log_p, data64, unravel, dim, float(step), compiled)
         all_err, all_ad, all_fd = [], [], []
         for p in points:
@@ -348,8 +351,9 @@ def score_agreement(
                     f"as the first); got {x.shape[0]} coordinates"
                 )
             value, g_ad, g_fd = (np.asarray(v, dtype=np.float64) for v in evaluate(x))
-            floor = (1e-6 * max(1.0, abs(float(value))) if np.isfinite(value) else 1e-6) \
-                if atol is None else float(atol)
+            floor = (
+                (1e-6 * max(1.0, abs(float(value))) if np.isfinite(value) else 1e-6) if atol is None else float(atol)
+            )
             with np.errstate(invalid="ignore", divide="ignore"):
                 denom = np.maximum(floor, np.maximum(np.abs(g_fd), np.abs(g_ad)))
                 err = np.abs(g_ad - g_fd) / denom
@@ -464,9 +468,7 @@ def _finite_at(log_p, points: list, data) -> None:
         )
 
 
-def assert_jit_matches_eager(
-    log_p: LogDensity, point: Any, *, data: Any = None, rtol: float | None = None
-) -> None:
+def assert_jit_matches_eager(log_p: LogDensity, point: Any, *, data: Any = None, rtol: float | None = None) -> None:
     """Raise ``AssertionError`` if ``jax.jit(log_p)`` fails or differs from the eager value.
 
     Agreement: ``|jit - eager| <= rtol * max(1, |jit|, |eager|)``, ``rtol`` defaulting to
@@ -479,9 +481,7 @@ def assert_jit_matches_eager(
         else:
             compiled = jax.jit(log_p)(point, data)
     except Exception as exc:
-        raise AssertionError(
-            f"log_p fails under jax.jit: {type(exc).__name__}: {_first_line(exc)}"
-        ) from exc
+        raise AssertionError(f"log_p fails under jax.jit: {type(exc).__name__}: {_first_line(exc)}") from exc
     tol = _default_rtol(eager) if rtol is None else positive("rtol", rtol)
     if np.shape(compiled) != np.shape(eager) or not _agree(compiled, eager, tol):
         raise AssertionError(
@@ -522,14 +522,12 @@ def _vmap_at(log_p, points: list, data, rtol) -> None:
             batched = jax.vmap(log_p, in_axes=(0, None))(batch, data)
     except Exception as exc:
         raise AssertionError(
-            f"log_p fails under jax.vmap over a batch of {len(points)} points: "
-            f"{type(exc).__name__}: {_first_line(exc)}"
+            f"log_p fails under jax.vmap over a batch of {len(points)} points: {type(exc).__name__}: {_first_line(exc)}"
         ) from exc
     batched = np.asarray(batched)
     if batched.shape != (len(points),):
         raise AssertionError(
-            f"jax.vmap(log_p) over {len(points)} points returned shape {batched.shape}; "
-            f"expected ({len(points)},)"
+            f"jax.vmap(log_p) over {len(points)} points returned shape {batched.shape}; expected ({len(points)},)"
         )
     tol = _default_rtol(singles) if rtol is None else rtol
     for i in range(len(points)):
@@ -540,9 +538,7 @@ def _vmap_at(log_p, points: list, data, rtol) -> None:
             )
 
 
-def assert_deterministic(
-    log_p: LogDensity, point: Any, *, data: Any = None, repeats: int = 3
-) -> None:
+def assert_deterministic(log_p: LogDensity, point: Any, *, data: Any = None, repeats: int = 3) -> None:
     """Raise ``AssertionError`` unless ``repeats`` eager calls at the same point give
     bit-identical values (a log-density must not draw random numbers or keep state)."""
     repeats = integer("repeats", repeats, minimum=2)
@@ -567,7 +563,8 @@ def _row_count(data) -> int:
     if len(set(sizes.values())) != 1:
         raise ValueError(
             "data: expected every array leaf to share the leading (row) axis, to permute rows; "
-            "got leading sizes " + ", ".join(f"'{k}': {v}" for k, v in sizes.items())
+            "got leading sizes "
+            + ", ".join(f"'{k}': {v}" for k, v in sizes.items())
             + ". Put per-model constants in a closure instead of in data."
         )
     return int(next(iter(sizes.values())))
@@ -638,8 +635,7 @@ class HealthReport:
         """Raise ``AssertionError`` listing every failed check."""
         if not self.passed:
             raise AssertionError(
-                "log_p failed health checks:\n"
-                + "\n".join(f"- {k}: {v}" for k, v in self.failures.items())
+                "log_p failed health checks:\n" + "\n".join(f"- {k}: {v}" for k, v in self.failures.items())
             )
 
     def __str__(self) -> str:  # pragma: no cover - convenience
@@ -699,7 +695,7 @@ def check_health(
 
 
 # ----------------------------------------------------------------------------- hypothesis
-def points_near(point: Any, radius: float = 0.1):
+def points_near(point: Any, radius: float = 0.1) -> SearchStrategy[Any]:
     """Hypothesis strategy of pytrees shaped like ``point``, each element moved by at most
     ``radius``: ``point + u`` with every ``u_i`` in ``[-radius, radius]``.
 
@@ -721,15 +717,14 @@ def points_near(point: Any, radius: float = 0.1):
         bases.append(arr)
     offsets = [
         hnp.arrays(
-            np.float64, b.shape,
+            np.float64,
+            b.shape,
             elements=st.floats(-float(radius), float(radius), allow_nan=False, allow_infinity=False),
         )
         for b in bases
     ]
 
     def build(offs):
-        return jax.tree_util.tree_unflatten(
-            treedef, [(b + o).astype(b.dtype) for b, o in zip(bases, offs)]
-        )
+        return jax.tree_util.tree_unflatten(treedef, [(b + o).astype(b.dtype) for b, o in zip(bases, offs)])
 
     return st.tuples(*offsets).map(build)

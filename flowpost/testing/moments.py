@@ -25,6 +25,7 @@ covariance entry (j, k), ``variance_error="gaussian"``
 ``z = (C_jk - cov_jk) / se(C_jk)``. For ``|z|`` thresholds of 4-5 a correct ensemble fails
 with probability about 6e-5 (4) to 6e-7 (5) per compared quantity (two-sided normal tail).
 """
+
 from __future__ import annotations
 
 from collections.abc import Sequence
@@ -34,7 +35,7 @@ from typing import Any
 import jax
 import numpy as np
 
-from .checks import _coordinates
+from .checks import coordinates
 
 __all__ = ["MomentZScores", "assert_moments_match", "moment_zscores"]
 
@@ -96,11 +97,9 @@ def _flatten_draws(draws) -> tuple[np.ndarray, list[str]]:
         if n is None:
             n = a.shape[0]
         elif a.shape[0] != n:
-            raise ValueError(
-                f"draws: every leaf must share the leading axis N; got {n} and {a.shape[0]}"
-            )
+            raise ValueError(f"draws: every leaf must share the leading axis N; got {n} and {a.shape[0]}")
         cols.append(a.reshape(n, -1))
-    labels = [c.label for c in _coordinates(draws, leading=1)]
+    labels = [c.label for c in coordinates(draws, leading=1)]
     return np.concatenate(cols, axis=1), labels
 
 
@@ -109,8 +108,7 @@ def _flatten_reference(ref, d: int, name: str) -> np.ndarray:
         arr = np.asarray(ref, dtype=np.float64).reshape(-1)
     else:
         leaves = jax.tree_util.tree_leaves(ref)
-        arr = np.concatenate([np.asarray(x, dtype=np.float64).reshape(-1) for x in leaves]) \
-            if leaves else np.zeros(0)
+        arr = np.concatenate([np.asarray(x, dtype=np.float64).reshape(-1) for x in leaves]) if leaves else np.zeros(0)
     if arr.shape != (d,):
         raise ValueError(f"{name}: expected {d} values (one per coordinate of draws); got {arr.size}")
     return arr
@@ -152,15 +150,16 @@ def moment_zscores(
             raise ValueError(f"names: expected {d} labels; got {len(names)}")
         labels = [str(s) for s in names]
     if variance_error not in ("empirical", "gaussian"):
-        raise ValueError(
-            f"variance_error: expected 'empirical' or 'gaussian'; got {variance_error!r}"
-        )
+        raise ValueError(f"variance_error: expected 'empirical' or 'gaussian'; got {variance_error!r}")
     mu = _flatten_reference(mean, d, "mean")
     if n_eff is None:
         ne = np.full(d, float(n))
     else:
-        ne = np.broadcast_to(np.asarray(n_eff, dtype=np.float64), (d,)).copy() \
-            if np.ndim(n_eff) in (0, 1) and np.size(n_eff) in (1, d) else None
+        ne = (
+            np.broadcast_to(np.asarray(n_eff, dtype=np.float64), (d,)).copy()
+            if np.ndim(n_eff) in (0, 1) and np.size(n_eff) in (1, d)
+            else None
+        )
         if ne is None or not np.all(np.isfinite(ne)) or np.any(ne <= 0):
             raise ValueError(f"n_eff: expected a positive number or {d} positive numbers; got {n_eff!r}")
     if not np.all(np.isfinite(x)):
@@ -173,8 +172,7 @@ def moment_zscores(
     var = np.diag(sample_cov)
     mean_se = np.sqrt(var / ne)
     with np.errstate(divide="ignore", invalid="ignore"):
-        mean_z = np.where(mean_se > 0, (xbar - mu) / mean_se,
-                          np.where(xbar == mu, 0.0, np.sign(xbar - mu) * np.inf))
+        mean_z = np.where(mean_se > 0, (xbar - mu) / mean_se, np.where(xbar == mu, 0.0, np.sign(xbar - mu) * np.inf))
 
     cov_z = cov_se = None
     if cov is not None:
@@ -191,8 +189,7 @@ def moment_zscores(
             cov_se = np.sqrt((np.outer(sd2, sd2) + S**2) / ne_pair)
         diff = sample_cov - S
         with np.errstate(divide="ignore", invalid="ignore"):
-            cov_z = np.where(cov_se > 0, diff / cov_se,
-                             np.where(diff == 0, 0.0, np.sign(diff) * np.inf))
+            cov_z = np.where(cov_se > 0, diff / cov_se, np.where(diff == 0, 0.0, np.sign(diff) * np.inf))
     return MomentZScores(labels, mean_z, cov_z, xbar, mean_se, sample_cov, cov_se, ne)
 
 
@@ -220,22 +217,29 @@ def assert_moments_match(
     problems = []
     for k, lab in enumerate(z.labels):
         if not abs(z.mean_z[k]) <= threshold:
-            problems.append((abs(z.mean_z[k]),
-                             f"mean of {lab}: ensemble {z.ensemble_mean[k]:.6g}, reference "
-                             f"{mu[k]:.6g}, off by {z.mean_z[k]:+.3g} standard errors "
-                             f"(se {z.mean_se[k]:.3g}, n_eff {z.n_eff[k]:.4g})"))
-    if z.cov_z is not None:
+            problems.append(
+                (
+                    abs(z.mean_z[k]),
+                    f"mean of {lab}: ensemble {z.ensemble_mean[k]:.6g}, reference "
+                    f"{mu[k]:.6g}, off by {z.mean_z[k]:+.3g} standard errors "
+                    f"(se {z.mean_se[k]:.3g}, n_eff {z.n_eff[k]:.4g})",
+                )
+            )
+    if z.cov_z is not None and z.cov_se is not None:  # both set, or both None without a reference cov
         S = np.asarray(cov, dtype=np.float64)
         d = len(z.labels)
         for j in range(d):
             for k in range(j, d):
                 if not abs(z.cov_z[j, k]) <= threshold:
-                    what = f"variance of {z.labels[j]}" if j == k else \
-                        f"covariance of ({z.labels[j]}, {z.labels[k]})"
-                    problems.append((abs(z.cov_z[j, k]),
-                                     f"{what}: ensemble {z.ensemble_cov[j, k]:.6g}, reference "
-                                     f"{S[j, k]:.6g}, off by {z.cov_z[j, k]:+.3g} standard errors "
-                                     f"(se {z.cov_se[j, k]:.3g})"))
+                    what = f"variance of {z.labels[j]}" if j == k else f"covariance of ({z.labels[j]}, {z.labels[k]})"
+                    problems.append(
+                        (
+                            abs(z.cov_z[j, k]),
+                            f"{what}: ensemble {z.ensemble_cov[j, k]:.6g}, reference "
+                            f"{S[j, k]:.6g}, off by {z.cov_z[j, k]:+.3g} standard errors "
+                            f"(se {z.cov_se[j, k]:.3g})",
+                        )
+                    )
     if problems:
         problems.sort(key=lambda p: -p[0])
         raise AssertionError(

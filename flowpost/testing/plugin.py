@@ -89,15 +89,23 @@ The objects behind the fixtures (:class:`ScoreCheck`, :class:`HealthCheck`,
 :class:`CalibrationRun`, :class:`MomentCheck`, :class:`ReferenceFamilies`) and
 :func:`describe_rank_shape` can also be imported from this module and built by hand.
 """
+
 from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Literal
 
 import pytest
 
-if TYPE_CHECKING:  # pragma: no cover - the region module is imported when a check runs
+if TYPE_CHECKING:  # pragma: no cover - these modules (and JAX) are imported when a check runs
+    import jax
+
+    from ..steppers.base import Stepper
+    from .calibration import CalibrationReport
+    from .checks import HealthReport, ScoreAgreement
+    from .moments import MomentZScores
+    from .references import ClosedFormModel
     from .region import Region
 
 __all__ = [
@@ -166,27 +174,45 @@ _MIN_BINS = 2
 # (field of Settings, command-line flag, parser, help text)
 _OPTIONS: tuple[tuple[str, str, Callable[[str], Any], str], ...] = (
     ("seed", "--flowpost-seed", _non_negative_int, "seed of the fp_key fixture (default 0)"),
-    ("score_tol", "--flowpost-score-tol", _positive_float,
-     "largest relative error between autodiff and finite-difference scores accepted by "
-     "fp_score_check (default 1e-4)"),
-    ("score_points", "--flowpost-score-points", _positive_int,
-     "points at which fp_score_check compares the scores (default 16)"),
-    ("sbc_datasets", "--flowpost-sbc-datasets", _positive_int,
-     "simulated datasets per fp_sbc calibration (default 100)"),
-    ("sbc_steps", "--flowpost-sbc-steps", _positive_int,
-     "steps of the flow per dataset in fp_sbc (default 500)"),
-    ("sbc_bins", "--flowpost-sbc-bins", _positive_int,
-     "rank bins of fp_sbc's chi-square test (default 5)"),
-    ("sbc_alpha", "--flowpost-sbc-alpha", _probability,
-     "p-value below which fp_sbc reports a calibration failure (default 0.01)"),
-    ("moment_z", "--flowpost-moment-z", _positive_float,
-     "Monte-Carlo standard errors allowed by fp_moments (default 4.5)"),
+    (
+        "score_tol",
+        "--flowpost-score-tol",
+        _positive_float,
+        "largest relative error between autodiff and finite-difference scores accepted by "
+        "fp_score_check (default 1e-4)",
+    ),
+    (
+        "score_points",
+        "--flowpost-score-points",
+        _positive_int,
+        "points at which fp_score_check compares the scores (default 16)",
+    ),
+    (
+        "sbc_datasets",
+        "--flowpost-sbc-datasets",
+        _positive_int,
+        "simulated datasets per fp_sbc calibration (default 100)",
+    ),
+    ("sbc_steps", "--flowpost-sbc-steps", _positive_int, "steps of the flow per dataset in fp_sbc (default 500)"),
+    ("sbc_bins", "--flowpost-sbc-bins", _positive_int, "rank bins of fp_sbc's chi-square test (default 5)"),
+    (
+        "sbc_alpha",
+        "--flowpost-sbc-alpha",
+        _probability,
+        "p-value below which fp_sbc reports a calibration failure (default 0.01)",
+    ),
+    (
+        "moment_z",
+        "--flowpost-moment-z",
+        _positive_float,
+        "Monte-Carlo standard errors allowed by fp_moments (default 4.5)",
+    ),
 )
 
 _SETTINGS_KEY = pytest.StashKey[Settings]()
 
 
-def _ini_type(parse) -> str:
+def _ini_type(parse: Callable[[str], Any]) -> Literal["string"]:
     """Ini keys are declared as strings and parsed here, so that a bad value gets this
     plugin's message naming the key whatever pytest's version (pytest 9.2 checks typed keys
     itself, with a message that does not name the key)."""
@@ -237,7 +263,7 @@ def pytest_configure(config: pytest.Config) -> None:
 
 
 def pytest_report_header(config: pytest.Config) -> list[str] | None:
-    if config.getoption("verbose", 0) <= 0 or _SETTINGS_KEY not in config.stash:
+    if config.option.verbose <= 0 or _SETTINGS_KEY not in config.stash:
         return None
     s = config.stash[_SETTINGS_KEY]
     return [
@@ -268,7 +294,7 @@ class ScoreCheck:
     ``fp_key``), and ``tolerance=None`` takes ``--flowpost-score-tol``.
     """
 
-    def __init__(self, tolerance: float, num_points: int, key):
+    def __init__(self, tolerance: float, num_points: int, key: jax.Array):
         from .._validate import integer, positive
 
         self.tolerance = positive("tolerance", tolerance)
@@ -287,7 +313,7 @@ class ScoreCheck:
         compiled: bool = True,
         check: bool = True,
         **where: Any,
-    ):
+    ) -> ScoreAgreement:
         from .checks import assert_score_matches, score_agreement
         from .region import Region
 
@@ -311,7 +337,7 @@ class HealthCheck:
     ``key`` unset gets the session's (``fp_key``).
     """
 
-    def __init__(self, key):
+    def __init__(self, key: jax.Array):
         self.key = key
 
     def __call__(
@@ -323,19 +349,18 @@ class HealthCheck:
         exchangeable: bool = False,
         check: bool = True,
         **where: Any,
-    ):
+    ) -> HealthReport:
         from .checks import check_health
         from .region import Region
 
         region = Region.from_keywords(where, region=region, caller="fp_health_check")
-        report = check_health(log_p, region.with_defaults(key=self.key), data=data,
-                              exchangeable=exchangeable)
+        report = check_health(log_p, region.with_defaults(key=self.key), data=data, exchangeable=exchangeable)
         if check:
             report.assert_passed()
         return report
 
 
-def describe_rank_shape(counts) -> str:
+def describe_rank_shape(counts: Any) -> str:
     """A reading of one rank histogram in words: U shape, hump, slope, or none of these.
 
     With ``M`` ranks in ``B`` bins (expected ``e = M / B`` per bin), the *slope* is
@@ -350,14 +375,18 @@ def describe_rank_shape(counts) -> str:
     if m <= 0 or b < 2:
         return "no ranks"
     half = b // 2
-    slope = (c[b - half:].sum() - c[:half].sum()) / m
+    slope = (c[b - half :].sum() - c[:half].sum()) / m
     edges = (c[0] + c[-1] - 2 * m / b) / m if b >= 3 else 0.0
     if abs(edges) >= abs(slope):
         if edges > 0:
-            return ("U shape: the true values fall in the tails of the draws too often, so the draws "
-                    "are too narrow (overconfident), e.g. a simulator noisier than the likelihood assumes")
-        return ("hump: the true values sit in the middle of the draws too often, so the draws are "
-                "too wide (underconfident), e.g. a simulator less noisy than the likelihood assumes")
+            return (
+                "U shape: the true values fall in the tails of the draws too often, so the draws "
+                "are too narrow (overconfident), e.g. a simulator noisier than the likelihood assumes"
+            )
+        return (
+            "hump: the true values sit in the middle of the draws too often, so the draws are "
+            "too wide (underconfident), e.g. a simulator less noisy than the likelihood assumes"
+        )
     if slope > 0:
         return "slope up to high ranks: the draws tend to lie below the true values (biased low)"
     return "slope down to low ranks: the draws tend to lie above the true values (biased high)"
@@ -380,7 +409,7 @@ class CalibrationRun:
         ``10 * bins - 1`` particles: ``draws + 1`` rank values fall evenly into the bins.
     """
 
-    def __init__(self, n_datasets: int, steps: int, bins: int, alpha: float, key):
+    def __init__(self, n_datasets: int, steps: int, bins: int, alpha: float, key: jax.Array):
         from .._validate import integer, open_unit
 
         self.n_datasets = integer("n_datasets", n_datasets, minimum=1)
@@ -393,7 +422,7 @@ class CalibrationRun:
     def draws(self) -> int:
         return 10 * self.bins - 1
 
-    def tile(self, point: Any, n: int | None = None):
+    def tile(self, point: Any, n: int | None = None) -> Any:
         """``init`` with ``n`` (default :attr:`draws`) copies of one point (a pytree without
         the particle axis), every leaf as a float array of shape ``(n, *leaf.shape)``."""
         import jax
@@ -414,9 +443,9 @@ class CalibrationRun:
     def __call__(
         self,
         log_p: Callable[..., Any],
-        prior_draw: Callable,
-        simulate: Callable,
-        stepper,
+        prior_draw: Callable[[jax.Array], Any],
+        simulate: Callable[[jax.Array, Any], Any],
+        stepper: Stepper,
         init: Any,
         *,
         support: Any = None,
@@ -425,32 +454,41 @@ class CalibrationRun:
         bins: int | None = None,
         alpha: float | None = None,
         batch: int = 25,
-        key=None,
+        key: jax.Array | None = None,
         check: bool = True,
-    ):
+    ) -> CalibrationReport:
         from .._validate import open_unit
         from .calibration import calibrate
 
         alpha = self.alpha if alpha is None else open_unit("alpha", alpha)
         report = calibrate(
-            log_p, prior_draw, simulate, stepper, init,
+            log_p,
+            prior_draw,
+            simulate,
+            stepper,
+            init,
             key=self.key if key is None else key,
             n_datasets=self.n_datasets if n_datasets is None else n_datasets,
             steps=self.steps if steps is None else steps,
             bins=self.bins if bins is None else bins,
-            support=support, batch=batch,
+            support=support,
+            batch=batch,
         )
         if check and not report.passed(alpha):
             failing = [n for n, p in report.p_values.items() if not p >= alpha]
             lines = [f"simulation-based calibration failed (alpha {alpha:g}):"]
             for i, name in enumerate(report.names):
                 if name in failing:
-                    lines.append(f"- {name}: p = {report.p_values[name]:.3g}, rank counts "
-                                 f"{report.counts[i].tolist()}; looks like a "
-                                 f"{describe_rank_shape(report.counts[i])}")
+                    lines.append(
+                        f"- {name}: p = {report.p_values[name]:.3g}, rank counts "
+                        f"{report.counts[i].tolist()}; looks like a "
+                        f"{describe_rank_shape(report.counts[i])}"
+                    )
             if report.nonfinite_runs:
-                lines.append(f"- {report.nonfinite_runs} of {report.ranks.shape[0]} runs ended with "
-                             "non-finite particles (step size too large, or log_p not finite)")
+                lines.append(
+                    f"- {report.nonfinite_runs} of {report.ranks.shape[0]} runs ended with "
+                    "non-finite particles (step size too large, or log_p not finite)"
+                )
             lines.append(str(report))
             raise AssertionError("\n".join(lines))
         return report
@@ -471,8 +509,10 @@ class MomentCheck:
 
     @staticmethod
     def _draws(draws):
-        particles = getattr(draws, "particles", None)
-        return draws if particles is None else particles
+        """A run's result gives its particles; anything else is taken as the draws."""
+        from ..engine import Result
+
+        return draws.particles if isinstance(draws, Result) else draws
 
     def __call__(
         self,
@@ -485,18 +525,23 @@ class MomentCheck:
         variance_error: str = "empirical",
         names: Any = None,
         check: bool = True,
-    ):
+    ) -> MomentZScores:
         from .moments import assert_moments_match, moment_zscores
 
         draws = self._draws(draws)
         if not check:
             return moment_zscores(draws, mean, cov, n_eff=n_eff, variance_error=variance_error, names=names)
         return assert_moments_match(
-            draws, mean, cov, threshold=self.threshold if threshold is None else threshold,
-            n_eff=n_eff, variance_error=variance_error, names=names,
+            draws,
+            mean,
+            cov,
+            threshold=self.threshold if threshold is None else threshold,
+            n_eff=n_eff,
+            variance_error=variance_error,
+            names=names,
         )
 
-    def against(self, model, data: Any, draws: Any, **kwargs):
+    def against(self, model: ClosedFormModel, data: Any, draws: Any, **kwargs: Any) -> MomentZScores:
         """Compare ``draws`` with the closed-form posterior mean and covariance of ``model``
         (a :class:`flowpost.testing.ClosedFormModel`) given ``data``; keywords as for a call."""
         if not (hasattr(model, "posterior_mean") and hasattr(model, "posterior_cov")):
@@ -577,6 +622,8 @@ def pytest_generate_tests(metafunc: pytest.Metafunc) -> None:
         from .references import CLOSED_FORM_MODELS
 
         metafunc.parametrize(
-            "fp_each_reference_model", list(CLOSED_FORM_MODELS), indirect=True,
+            "fp_each_reference_model",
+            list(CLOSED_FORM_MODELS),
+            indirect=True,
             ids=[cls.__name__ for cls in CLOSED_FORM_MODELS],
         )

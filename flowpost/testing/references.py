@@ -30,16 +30,20 @@ common interface of :class:`ClosedFormModel`:
 The closed forms are the standard conjugate updates ("Bayesian Data Analysis", 3rd ed.
 (2013), ch. 2-3; "Pattern Recognition and Machine Learning" (2006), sec. 3.3).
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 import scipy.stats
 from jax.scipy import stats as jstats
+
+if TYPE_CHECKING:  # pragma: no cover - hypothesis is a test dependency
+    from hypothesis.strategies import SearchStrategy
 
 __all__ = [
     "CLOSED_FORM_MODELS",
@@ -50,6 +54,9 @@ __all__ = [
     "LinearRegressionKnownNoise",
     "NormalKnownVariance",
 ]
+
+Theta = dict[str, Any]  # {parameter name: leaf}; a batch of draws adds a leading axis
+Data = dict[str, Any]  # {field name: array}; rows along the leading axis
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -69,8 +76,10 @@ def _finite(name: str, value) -> float:
 
 def _field(data, name: str, ndim: int | None = None) -> np.ndarray:
     if not isinstance(data, dict) or name not in data:
-        raise ValueError(f"data: expected a dict with key '{name}'; got {type(data).__name__}"
-                         + (f" with keys {sorted(data)}" if isinstance(data, dict) else ""))
+        raise ValueError(
+            f"data: expected a dict with key '{name}'; got {type(data).__name__}"
+            + (f" with keys {sorted(data)}" if isinstance(data, dict) else "")
+        )
     arr = np.asarray(data[name])
     if ndim is not None and arr.ndim != ndim:
         raise ValueError(f"data['{name}']: expected {ndim} axes; got shape {arr.shape}")
@@ -95,6 +104,7 @@ def _leaf(theta, name: str) -> jax.Array:
 
 def _strategies():
     import hypothesis.strategies as st
+
     return st
 
 
@@ -103,32 +113,32 @@ class ClosedFormModel:
 
     supports: ClassVar[dict[str, str]] = {}
 
-    def log_density(self, theta, data) -> jax.Array:  # pragma: no cover - abstract
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def posterior_parameters(self, data) -> dict[str, Any]:  # pragma: no cover
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:  # pragma: no cover
         raise NotImplementedError
 
-    def posterior(self, data):  # pragma: no cover
+    def posterior(self, data: Data) -> Any:  # pragma: no cover
         raise NotImplementedError
 
-    def prior(self):  # pragma: no cover
+    def prior(self) -> Any:  # pragma: no cover
         raise NotImplementedError
 
-    def posterior_mean(self, data) -> np.ndarray:
+    def posterior_mean(self, data: Data) -> np.ndarray:
         return np.atleast_1d(np.asarray(self.posterior(data).mean(), dtype=np.float64))
 
-    def posterior_cov(self, data) -> np.ndarray:  # pragma: no cover
+    def posterior_cov(self, data: Data) -> np.ndarray:  # pragma: no cover
         raise NotImplementedError
 
-    def simulate(self, key, num_obs: int):  # pragma: no cover
+    def simulate(self, key: jax.Array, num_obs: int) -> tuple[Theta, Data]:  # pragma: no cover
         raise NotImplementedError
 
-    def draw_posterior(self, key, data, num: int | None = None):  # pragma: no cover
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:  # pragma: no cover
         raise NotImplementedError
 
     @classmethod
-    def instances(cls, max_obs: int = 8):  # pragma: no cover
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:  # pragma: no cover
         raise NotImplementedError
 
 
@@ -168,42 +178,42 @@ class NormalKnownVariance(ClosedFormModel):
         object.__setattr__(self, "prior_sd", _positive("prior_sd", self.prior_sd))
         object.__setattr__(self, "noise_sd", _positive("noise_sd", self.noise_sd))
 
-    def log_density(self, theta, data):
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:
         mu = _leaf(theta, "mu")
         y = _like(data["y"], mu)
         return jstats.norm.logpdf(mu, self.prior_mean, self.prior_sd) + jnp.sum(
             jstats.norm.logpdf(y, mu, self.noise_sd)
         )
 
-    def posterior_parameters(self, data):
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:
         y = _field(data, "y", 1).astype(np.float64)
         precision = 1.0 / self.prior_sd**2 + y.size / self.noise_sd**2
         mean = (self.prior_mean / self.prior_sd**2 + y.sum() / self.noise_sd**2) / precision
         return {"mean": float(mean), "sd": float(np.sqrt(1.0 / precision))}
 
-    def posterior(self, data):
+    def posterior(self, data: Data) -> Any:
         p = self.posterior_parameters(data)
         return scipy.stats.norm(loc=p["mean"], scale=p["sd"])
 
-    def prior(self):
+    def prior(self) -> Any:
         return scipy.stats.norm(loc=self.prior_mean, scale=self.prior_sd)
 
-    def posterior_cov(self, data):
+    def posterior_cov(self, data: Data) -> np.ndarray:
         return np.array([[self.posterior_parameters(data)["sd"] ** 2]])
 
-    def simulate(self, key, num_obs: int):
+    def simulate(self, key: jax.Array, num_obs: int) -> tuple[Theta, Data]:
         n = _num(num_obs)
         k_mu, k_y = jax.random.split(key)
         mu = self.prior_mean + self.prior_sd * jax.random.normal(k_mu, ())
         y = mu + self.noise_sd * jax.random.normal(k_y, (n,))
         return {"mu": mu}, {"y": y}
 
-    def draw_posterior(self, key, data, num=None):
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:
         p = self.posterior_parameters(data)
         return {"mu": p["mean"] + p["sd"] * jax.random.normal(key, _shape(num))}
 
     @classmethod
-    def instances(cls, max_obs: int = 8):
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:
         st = _strategies()
 
         @st.composite
@@ -238,38 +248,36 @@ class BetaBinomial(ClosedFormModel):
         object.__setattr__(self, "a", _positive("a", self.a))
         object.__setattr__(self, "b", _positive("b", self.b))
 
-    def log_density(self, theta, data):
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:
         p = _leaf(theta, "p")
         k = jnp.asarray(data["successes"])
         n = jnp.asarray(data["trials"])
         return jstats.beta.logpdf(p, self.a, self.b) + jnp.sum(jstats.binom.logpmf(k, n, p))
 
-    def _counts(self, data):
+    def _counts(self, data: Data) -> tuple[np.ndarray, np.ndarray]:
         k = _field(data, "successes", 1).astype(np.float64)
         n = _field(data, "trials", 1).astype(np.float64)
         if k.shape != n.shape:
-            raise ValueError(
-                f"data: 'successes' and 'trials' must have the same shape; got {k.shape} and {n.shape}"
-            )
+            raise ValueError(f"data: 'successes' and 'trials' must have the same shape; got {k.shape} and {n.shape}")
         if np.any(k < 0) or np.any(k > n):
             raise ValueError("data: expected 0 <= successes <= trials in every row")
         return k, n
 
-    def posterior_parameters(self, data):
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:
         k, n = self._counts(data)
         return {"a": float(self.a + k.sum()), "b": float(self.b + (n - k).sum())}
 
-    def posterior(self, data):
+    def posterior(self, data: Data) -> Any:
         p = self.posterior_parameters(data)
         return scipy.stats.beta(p["a"], p["b"])
 
-    def prior(self):
+    def prior(self) -> Any:
         return scipy.stats.beta(self.a, self.b)
 
-    def posterior_cov(self, data):
+    def posterior_cov(self, data: Data) -> np.ndarray:
         return np.array([[float(self.posterior(data).var())]])
 
-    def simulate(self, key, num_obs: int, trials: int = 10):
+    def simulate(self, key: jax.Array, num_obs: int, trials: int = 10) -> tuple[Theta, Data]:
         """Draw ``p`` from the prior and ``num_obs`` rows of ``trials`` Bernoulli trials."""
         m = _num(num_obs)
         t = _num(trials, "trials")
@@ -280,12 +288,12 @@ class BetaBinomial(ClosedFormModel):
         k = jnp.sum(jax.random.uniform(k_k, (m, t), p.dtype) < p, axis=1, dtype=jnp.int32)
         return {"p": p}, {"successes": k, "trials": n}
 
-    def draw_posterior(self, key, data, num=None):
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:
         q = self.posterior_parameters(data)
         return {"p": jax.random.beta(key, q["a"], q["b"], shape=_shape(num))}
 
     @classmethod
-    def instances(cls, max_obs: int = 8):
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:
         st = _strategies()
 
         @st.composite
@@ -320,42 +328,40 @@ class GammaPoisson(ClosedFormModel):
         object.__setattr__(self, "shape", _positive("shape", self.shape))
         object.__setattr__(self, "rate", _positive("rate", self.rate))
 
-    def log_density(self, theta, data):
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:
         lam = _leaf(theta, "lam")
         y = jnp.asarray(data["counts"])
-        return jstats.gamma.logpdf(lam, self.shape, scale=1.0 / self.rate) + jnp.sum(
-            jstats.poisson.logpmf(y, lam)
-        )
+        return jstats.gamma.logpdf(lam, self.shape, scale=1.0 / self.rate) + jnp.sum(jstats.poisson.logpmf(y, lam))
 
-    def posterior_parameters(self, data):
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:
         y = _field(data, "counts", 1).astype(np.float64)
         if np.any(y < 0):
             raise ValueError("data['counts']: expected non-negative counts")
         return {"shape": float(self.shape + y.sum()), "rate": float(self.rate + y.size)}
 
-    def posterior(self, data):
+    def posterior(self, data: Data) -> Any:
         p = self.posterior_parameters(data)
         return scipy.stats.gamma(p["shape"], scale=1.0 / p["rate"])
 
-    def prior(self):
+    def prior(self) -> Any:
         return scipy.stats.gamma(self.shape, scale=1.0 / self.rate)
 
-    def posterior_cov(self, data):
+    def posterior_cov(self, data: Data) -> np.ndarray:
         return np.array([[float(self.posterior(data).var())]])
 
-    def simulate(self, key, num_obs: int):
+    def simulate(self, key: jax.Array, num_obs: int) -> tuple[Theta, Data]:
         n = _num(num_obs)
         k_l, k_y = jax.random.split(key)
         lam = jax.random.gamma(k_l, self.shape, shape=()) / self.rate
         y = jax.random.poisson(k_y, lam, shape=(n,)).astype(jnp.int32)
         return {"lam": lam}, {"counts": y}
 
-    def draw_posterior(self, key, data, num=None):
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:
         p = self.posterior_parameters(data)
         return {"lam": jax.random.gamma(key, p["shape"], shape=_shape(num)) / p["rate"]}
 
     @classmethod
-    def instances(cls, max_obs: int = 8):
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:
         st = _strategies()
 
         @st.composite
@@ -390,21 +396,17 @@ class DirichletMultinomial(ClosedFormModel):
     def __post_init__(self):
         a = np.asarray(self.alpha, dtype=np.float64)
         if a.ndim != 1 or a.size < 2 or not np.all(np.isfinite(a)) or np.any(a <= 0):
-            raise ValueError(
-                f"alpha: expected a 1-D array of at least 2 positive numbers; got {self.alpha!r}"
-            )
+            raise ValueError(f"alpha: expected a 1-D array of at least 2 positive numbers; got {self.alpha!r}")
         object.__setattr__(self, "alpha", a)
 
     @property
     def categories(self) -> int:
         return int(self.alpha.size)
 
-    def log_density(self, theta, data):
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:
         probs = _leaf(theta, "probs")
         if probs.shape != (self.categories,):
-            raise ValueError(
-                f"theta['probs']: expected shape ({self.categories},); got {probs.shape}"
-            )
+            raise ValueError(f"theta['probs']: expected shape ({self.categories},); got {probs.shape}")
         head = probs[:-1]
         full = jnp.concatenate([head, 1.0 - jnp.sum(head, keepdims=True)])
         counts = jnp.asarray(data["counts"])
@@ -414,51 +416,47 @@ class DirichletMultinomial(ClosedFormModel):
         rows = jax.vmap(lambda c: jstats.multinomial.logpmf(c, jnp.sum(c), full))(counts)
         return prior + jnp.sum(rows)
 
-    def _counts(self, data):
+    def _counts(self, data: Data) -> np.ndarray:
         c = np.atleast_2d(_field(data, "counts")).astype(np.float64)
         if c.ndim != 2 or c.shape[1] != self.categories:
-            raise ValueError(
-                f"data['counts']: expected shape (m, {self.categories}); got {c.shape}"
-            )
+            raise ValueError(f"data['counts']: expected shape (m, {self.categories}); got {c.shape}")
         if np.any(c < 0):
             raise ValueError("data['counts']: expected non-negative counts")
         return c
 
-    def posterior_parameters(self, data):
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:
         return {"alpha": self.alpha + self._counts(data).sum(axis=0)}
 
-    def posterior(self, data):
+    def posterior(self, data: Data) -> Any:
         return scipy.stats.dirichlet(self.posterior_parameters(data)["alpha"])
 
-    def prior(self):
+    def prior(self) -> Any:
         return scipy.stats.dirichlet(self.alpha)
 
-    def posterior_cov(self, data):
+    def posterior_cov(self, data: Data) -> np.ndarray:
         a = self.posterior_parameters(data)["alpha"]
         a0 = a.sum()
         m = a / a0
         return (np.diag(m) - np.outer(m, m)) / (a0 + 1.0)
 
-    def simulate(self, key, num_obs: int, draws_per_row: int = 10):
+    def simulate(self, key: jax.Array, num_obs: int, draws_per_row: int = 10) -> tuple[Theta, Data]:
         """Draw ``probs`` from the prior and ``num_obs`` count rows of ``draws_per_row``
         categorical draws each."""
         m = _num(num_obs)
         t = _num(draws_per_row, "draws_per_row")
         k_p, k_c = jax.random.split(key)
-        probs = jax.random.dirichlet(
-            k_p, jnp.asarray(self.alpha, dtype=jnp.result_type(float)), shape=()
-        )
+        probs = jax.random.dirichlet(k_p, jnp.asarray(self.alpha, dtype=jnp.result_type(float)), shape=())
         # a Multinomial(t, probs) row as category counts of t independent categorical draws
         labels = jax.random.categorical(k_c, jnp.log(probs), shape=(m, t))
         counts = jnp.sum(jax.nn.one_hot(labels, self.categories, dtype=jnp.int32), axis=1)
         return {"probs": probs}, {"counts": counts}
 
-    def draw_posterior(self, key, data, num=None):
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:
         a = jnp.asarray(self.posterior_parameters(data)["alpha"], dtype=jnp.result_type(float))
         return {"probs": jax.random.dirichlet(key, a, shape=_shape(num))}
 
     @classmethod
-    def instances(cls, max_obs: int = 8):
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:
         st = _strategies()
 
         @st.composite
@@ -496,9 +494,7 @@ class LinearRegressionKnownNoise(ClosedFormModel):
         if m.ndim != 1 or m.size < 1 or not np.all(np.isfinite(m)):
             raise ValueError(f"prior_mean: expected a finite 1-D array; got {self.prior_mean!r}")
         if s.shape != (m.size, m.size) or not np.allclose(s, s.T):
-            raise ValueError(
-                f"prior_cov: expected a symmetric ({m.size}, {m.size}) matrix; got shape {s.shape}"
-            )
+            raise ValueError(f"prior_cov: expected a symmetric ({m.size}, {m.size}) matrix; got shape {s.shape}")
         if np.linalg.eigvalsh(s).min() <= 0:
             raise ValueError("prior_cov: expected a positive-definite matrix")
         object.__setattr__(self, "prior_mean", m)
@@ -509,16 +505,15 @@ class LinearRegressionKnownNoise(ClosedFormModel):
     def num_weights(self) -> int:
         return int(self.prior_mean.size)
 
-    def log_density(self, theta, data):
+    def log_density(self, theta: Theta, data: Data) -> jax.Array:
         w = _leaf(theta, "w")
         X = _like(data["X"], w)
         y = _like(data["y"], w)
-        prior = jstats.multivariate_normal.logpdf(
-            w, _like(self.prior_mean, w), _like(self.prior_cov, w)
-        )
-        return prior + jnp.sum(jstats.norm.logpdf(y, X @ w, self.noise_sd))
+        prior = jstats.multivariate_normal.logpdf(w, _like(self.prior_mean, w), _like(self.prior_cov, w))
+        # jax annotates multivariate_normal.logpdf as returning ArrayLike; it returns an Array
+        return prior + jnp.sum(jstats.norm.logpdf(y, X @ w, self.noise_sd))  # pyright: ignore[reportReturnType]
 
-    def posterior_parameters(self, data):
+    def posterior_parameters(self, data: Data) -> dict[str, Any]:
         X = _field(data, "X", 2).astype(np.float64)
         y = _field(data, "y", 1).astype(np.float64)
         if X.shape != (y.size, self.num_weights):
@@ -533,57 +528,53 @@ class LinearRegressionKnownNoise(ClosedFormModel):
         mean = cov @ (prec0 @ self.prior_mean + beta * X.T @ y)
         return {"mean": mean, "cov": cov}
 
-    def posterior(self, data):
+    def posterior(self, data: Data) -> Any:
         p = self.posterior_parameters(data)
         return scipy.stats.multivariate_normal(mean=p["mean"], cov=p["cov"])
 
-    def prior(self):
+    def prior(self) -> Any:
         return scipy.stats.multivariate_normal(mean=self.prior_mean, cov=self.prior_cov)
 
-    def posterior_mean(self, data):
+    def posterior_mean(self, data: Data) -> np.ndarray:
         return self.posterior_parameters(data)["mean"]
 
-    def posterior_cov(self, data):
+    def posterior_cov(self, data: Data) -> np.ndarray:
         return self.posterior_parameters(data)["cov"]
 
-    def simulate(self, key, num_obs: int):
+    def simulate(self, key: jax.Array, num_obs: int) -> tuple[Theta, Data]:
         n = _num(num_obs)
         k_w, k_x, k_y = jax.random.split(key, 3)
         dt = jnp.result_type(float)
-        w = jax.random.multivariate_normal(
-            k_w, jnp.asarray(self.prior_mean, dt), jnp.asarray(self.prior_cov, dt)
-        )
+        w = jax.random.multivariate_normal(k_w, jnp.asarray(self.prior_mean, dt), jnp.asarray(self.prior_cov, dt))
         X = jax.random.normal(k_x, (n, self.num_weights), dt)
         y = X @ w + self.noise_sd * jax.random.normal(k_y, (n,), dt)
         return {"w": w}, {"X": X, "y": y}
 
-    def draw_posterior(self, key, data, num=None):
+    def draw_posterior(self, key: jax.Array, data: Data, num: int | None = None) -> Theta:
         p = self.posterior_parameters(data)
         dt = jnp.result_type(float)
-        return {"w": jax.random.multivariate_normal(
-            key, jnp.asarray(p["mean"], dt), jnp.asarray(p["cov"], dt), shape=_shape(num)
-        )}
+        return {
+            "w": jax.random.multivariate_normal(
+                key, jnp.asarray(p["mean"], dt), jnp.asarray(p["cov"], dt), shape=_shape(num)
+            )
+        }
 
     @classmethod
-    def instances(cls, max_obs: int = 8):
+    def instances(cls, max_obs: int = 8) -> SearchStrategy[tuple[ClosedFormModel, Data]]:
         st = _strategies()
 
         @st.composite
         def build(draw):
             p = draw(st.integers(1, 3))
             mean = draw(st.lists(st.floats(-2.0, 2.0), min_size=p, max_size=p))
-            L = np.asarray(
-                draw(st.lists(st.floats(-1.0, 1.0), min_size=p * p, max_size=p * p))
-            ).reshape(p, p)
+            L = np.asarray(draw(st.lists(st.floats(-1.0, 1.0), min_size=p * p, max_size=p * p))).reshape(p, p)
             model = cls(
                 prior_mean=np.asarray(mean),
                 prior_cov=L @ L.T + 0.1 * np.eye(p),
                 noise_sd=draw(st.floats(0.2, 3.0)),
             )
             n = draw(st.integers(1, max_obs))
-            X = np.asarray(
-                draw(st.lists(st.floats(-3.0, 3.0), min_size=n * p, max_size=n * p))
-            ).reshape(n, p)
+            X = np.asarray(draw(st.lists(st.floats(-3.0, 3.0), min_size=n * p, max_size=n * p))).reshape(n, p)
             y = np.asarray(draw(st.lists(st.floats(-10.0, 10.0), min_size=n, max_size=n)))
             return model, {"X": X, "y": y}
 

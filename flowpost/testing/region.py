@@ -31,6 +31,7 @@ The checks also take the region's fields as loose keywords (``around=``, ``sampl
 This module imports JAX only when a region is built from a key or a pytree, or its points
 are drawn: the pytest plugin, loaded by every pytest run, imports it without paying for JAX.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -83,8 +84,7 @@ def _check_key(key) -> Any:
         if key.shape != ():
             raise fail("key", "a single PRNG key (shape ()), not a batch of keys", key)
         return key
-    if isinstance(key, (jax.Array, np.ndarray)) and key.dtype == np.uint32 and key.ndim == 1 \
-            and key.shape[0] >= 2:
+    if isinstance(key, (jax.Array, np.ndarray)) and key.dtype == np.uint32 and key.ndim == 1 and key.shape[0] >= 2:
         return key  # a legacy raw key, jax.random.PRNGKey(seed)
     raise fail("key", _KEY_EXPECTED, key, TypeError)
 
@@ -156,18 +156,22 @@ class Region:
     # ------------------------------------------------------------------ constructors
     @classmethod
     def near(
-        cls, point: Any, scale: float = 0.1, num_points: int | None = None,
+        cls,
+        point: Any,
+        scale: float = 0.1,
+        num_points: int | None = None,
         key: jax.Array | None = None,
     ) -> Region:
         """Points ``point + scale * z``, ``z ~ N(0, I)``, around the pytree ``point``."""
         if point is None:
-            raise fail("point", "a pytree to perturb (a dict of scalars/arrays, or an array)", point,
-                       TypeError)
+            raise fail("point", "a pytree to perturb (a dict of scalars/arrays, or an array)", point, TypeError)
         return cls(around=point, scale=scale, num_points=num_points, key=key)
 
     @classmethod
     def drawn(
-        cls, sampler: Callable[[Any], Any], num_points: int | None = None,
+        cls,
+        sampler: Callable[[Any], Any],
+        num_points: int | None = None,
         key: jax.Array | None = None,
     ) -> Region:
         """Points ``sampler(k_j)`` for keys ``k_j`` split from ``key``."""
@@ -177,7 +181,11 @@ class Region:
 
     @classmethod
     def from_keywords(
-        cls, where: Mapping[str, Any], *, region: Region | None = None, caller: str = "region",
+        cls,
+        where: Mapping[str, Any],
+        *,
+        region: Region | None = None,
+        caller: str = "region",
     ) -> Region:
         """The region of a check called with ``region=`` or with loose keywords.
 
@@ -219,9 +227,7 @@ class Region:
                     f"region, {', '.join(where)}: expected either region= or the keywords "
                     f"{', '.join(k + '=' for k in REGION_KEYWORDS)}, not both; got region= and {loose}"
                 )
-            return instance(
-                "region", region, cls, "a Region (Region.near(point) or Region.drawn(sampler)) or None"
-            )
+            return instance("region", region, cls, "a Region (Region.near(point) or Region.drawn(sampler)) or None")
         return cls(**where)
 
     # ------------------------------------------------------------------ use
@@ -257,8 +263,7 @@ class Region:
         import jax
         import jax.numpy as jnp
 
-        n = integer("default_num_points", default_num_points, minimum=1) \
-            if self.num_points is None else self.num_points
+        n = integer("default_num_points", default_num_points, minimum=1) if self.num_points is None else self.num_points
         key = self.key_or_default()
         if self.sampler is not None:
             return [self.sampler(k) for k in jax.random.split(key, n)]
