@@ -541,15 +541,20 @@ class ThinnedTrail:
         self._size = 0
         self._steps_seen = 0
 
-    def push(self, block: ArrayLike) -> int:
+    def push(self, block: ArrayLike, stride: int = 1) -> int:
         """Append one window's trajectories.
 
         Parameters
         ----------
         block : array_like
-            Shape ``(steps, m, d)``: positions of the ``m`` tracked particles at
-            each of ``steps`` consecutive steps, oldest first. ``m`` and ``d``
-            must stay the same from one push to the next. ``steps`` may be 0.
+            Shape ``(rows, m, d)``: positions of the ``m`` tracked particles, oldest first,
+            one row every ``stride`` steps (the row stands for the last of its ``stride``
+            steps). ``m`` and ``d`` must stay the same from one push to the next. ``rows``
+            may be 0.
+        stride : int
+            Steps per row (>= 1): 1 for every step; a producer that already keeps one step in
+            ``stride`` (a divisor of ``thin``) passes its ``stride``, and the trail keeps every
+            ``thin / stride``-th row, the same steps as from the full block.
 
         Returns
         -------
@@ -573,10 +578,15 @@ class ThinnedTrail:
                 f"block must have shape (steps, {self._store.shape[1]}, {self._store.shape[2]}) "
                 f"like the earlier pushes; got {arr.shape}"
             )
-        # Local index i is kept when (steps_seen + i + 1) is a multiple of thin.
-        first = (-self._steps_seen - 1) % self._thin
-        kept = arr[first :: self._thin]
-        self._steps_seen += steps
+        stride = _positive_int(stride, "stride")
+        if self._thin % stride:
+            raise ValueError(f"stride: expected a divisor of thin = {self._thin}; got {stride}")
+        # Row i stands for step steps_seen + (i + 1) stride; it is kept when that step count is a
+        # multiple of thin.
+        every = self._thin // stride
+        first = (-(self._steps_seen // stride) - 1) % every
+        kept = arr[first::every]
+        self._steps_seen += steps * stride
         n_kept = kept.shape[0]
         if n_kept > self._capacity:
             kept = kept[-self._capacity :]

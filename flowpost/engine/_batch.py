@@ -36,6 +36,7 @@ from ._driver import (
     check_start,
     check_step_contract,
     resolve_controller,
+    tape_stride,
     taped_subset,
     window_body,
 )
@@ -46,14 +47,14 @@ from ._result import Result
 __all__ = ["sweep"]
 
 
-def batch_body(stepper, controllers, target, carry, keys, t0, n_active, tape_index, length):
+def batch_body(stepper, controllers, target, carry, keys, t0, n_active, tape_index, length, tape_every=1):
     def one(ctrl, c, k, t, n):
-        return window_body(stepper, ctrl, target, c, k, t, n, tape_index, length)
+        return window_body(stepper, ctrl, target, c, k, t, n, tape_index, length, tape_every)
 
     return jax.vmap(one)(controllers, carry, keys, t0, n_active)
 
 
-_batch_window = jax.jit(batch_body, static_argnames=("length",))
+_batch_window = jax.jit(batch_body, static_argnames=("length", "tape_every"))
 
 
 @jax.jit
@@ -152,6 +153,7 @@ def sweep(
     for mon in monitors:
         mon.open(bound, stepper, _member(carry, 0).state)
     tape_index = taped_subset(keys[0], x0.shape[0], min(monitors[0].tape_particles, x0.shape[0]))
+    every = tape_stride(monitors[0], window)
 
     histories = [History() for _ in range(m)]
     status = ["done"] * m
@@ -190,12 +192,13 @@ def sweep(
                     stepper,
                     _member(host_states, int(i)),
                     {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
-                    None if taped is None else taped[i, :ni],
+                    None if taped is None else taped[i, : ni // every],
                     int(mstep[i]) + ni,
                     elapsed,
                     flow_time=float(flow[i]),
                     reductions=reductions,
                     measured=measured[i],
+                    tape_stride=every,
                     defer_chains=True,
                 )
             # R-hat and ESS of every member's trails in one computation

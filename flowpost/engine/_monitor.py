@@ -4,17 +4,24 @@ per window, and says whether the run goes on, stops, or rolls back.
 Interface (what :func:`flowpost.run` calls; a user's own monitor implements the same):
 
 ``tape_particles`` : int
-    How many particles' per-step trajectories the driver should record inside each window
-    and hand to ``read`` (0 for none): a fixed random subset, drawn from the run's key.
+    How many particles' trajectories the driver should record inside each window and hand
+    to ``read`` (0 for none): a fixed random subset, drawn from the run's key.
+``tape_every`` : int
+    The driver records them after every ``tape_every``-th step when that divides the window
+    (else after every step); the default monitor asks for its ``trail_thin``.
 ``open(target, stepper, state) -> None``
-    Called once before the first window (and again on resume); resets internal buffers.
-``read(target, stepper, state, stats, tape, step, elapsed, *, flow_time, reductions) -> dict``
+    Called once before the first window (and again on resume and after a roll-back).
+``read(target, stepper, state, stats, tape, step, elapsed, *, flow_time, reductions,
+measured=None, defer_chains=False, tape_stride=1) -> dict``
     Called after each window. ``stats`` is the stepper's per-step stats stacked over the
-    window's steps (numpy arrays of shape ``(steps,)``, including the driver's
-    ``step_size``); ``tape`` is ``None`` or an array ``(steps, tape_particles, d)`` of a fixed
-    random subset of the particles; ``flow_time`` is the sum of the steps taken so far;
-    ``reductions`` says how each stat reduces over the window (the stepper's declaration).
-    Returns the window's record.
+    window's steps (numpy arrays of shape ``(steps,)``, the driver's ``step_size``
+    included); ``tape`` is ``None`` or an array ``(steps / tape_stride, tape_particles, d)``,
+    one row after every ``tape_stride``-th step; ``flow_time`` is the sum of the steps taken
+    so far; ``reductions`` says how each stat reduces over the window (the stepper's
+    declaration); ``measured`` are the device figures when the driver computed them already
+    (a sweep computes every member's in one call, :meth:`Monitor.measure_batch`), and
+    ``defer_chains`` leaves R-hat and ESS to the caller (:func:`chain_figures`). Returns the
+    window's record.
 ``judge(history) -> Verdict``
     Looks at the history (the new record is its last) and returns a :class:`Verdict`:
     ``"go"``, ``"stop"`` (with the reason) or ``"rewind"`` (roll back to the last good window,
@@ -197,6 +204,7 @@ class Monitor:
         self.stop_when = stop_when
         self.growth_limit = float(growth_limit)
         self.tape_particles = 0
+        self.tape_every = self.trail_thin
         self._prev = None
         self._first_spread = 0.0
         self._scale_set = False
@@ -263,6 +271,7 @@ class Monitor:
         reductions: dict[str, str],
         measured: dict[str, Any] | None = None,
         defer_chains: bool = False,
+        tape_stride: int = 1,
     ) -> dict[str, Any]:
         fig = self.measure(target, state, step) if measured is None else measured
         sizes = np.asarray(stats["step_size"], dtype=float)
@@ -292,7 +301,7 @@ class Monitor:
             if self.discrepancy:
                 rec["ksd"] = float(fig["ksd"])
             if self._trail is not None and tape is not None and len(tape):
-                self._trail.push(np.asarray(tape, dtype=float))
+                self._trail.push(np.asarray(tape, dtype=float), stride=tape_stride)
                 if self._trail.size >= 8 and not defer_chains:
                     rec.update(chain_figures([self._trail.groups()])[0])
         rec.update(summarise_stats(stats, reductions))
