@@ -22,7 +22,6 @@ from __future__ import annotations
 import os
 import time
 from collections.abc import Callable
-from functools import partial
 from typing import Any, NamedTuple
 
 import jax
@@ -155,7 +154,6 @@ def check_step_contract(stepper, controller: Controller, target: Target, carry: 
             f"step_size: expected a stepper that reports {missing} for {type(controller).__name__}; "
             f"got {type(stepper).__name__}, whose stats are {sorted(inner)}"
         )
-    jax.eval_shape(partial(_one_step, stepper, controller, target), carry, key, jnp.zeros((), jnp.int32))
     bad = {k: v.shape for k, v in inner.items() if v.shape != ()}
     if bad:
         raise TypeError(f"stepper: expected scalar stats from {type(stepper).__name__}.advance; got shapes {bad}")
