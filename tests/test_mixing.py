@@ -21,11 +21,13 @@ from statsmodels.tsa.stattools import acf
 from flowpost.diagnostics import (
     ThinnedTrail,
     autocorrelation,
+    average_ranks,
     bulk_ess,
     ess,
     plain_split_rhat,
     rank_normalise,
     split_rhat,
+    split_rhat_and_bulk_ess,
 )
 
 N_AR = 20_000  # length of each AR(1) series
@@ -221,6 +223,35 @@ def test_rank_normalise_matches_formula():
         r = sum(positions) / len(positions)
         ref.append(statistics.NormalDist().inv_cdf((r - 0.375) / (s + 0.25)))
     np.testing.assert_allclose(rank_normalise(draws).ravel(), ref, rtol=1e-12)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.integers(1, 40),
+    st.integers(1, 4),
+    st.sampled_from([2, 5, 1000]),
+    st.integers(0, 2**31 - 1),
+)
+def test_average_ranks_match_scipy_rankdata(rows, cols, levels, seed):
+    """Reference: scipy.stats.rankdata(method="average", axis=0), ties included (few levels
+    give many ties, 1000 levels almost none)."""
+    import scipy.stats
+
+    a = np.random.default_rng(seed).integers(0, levels, size=(rows, cols)).astype(float)
+    np.testing.assert_array_equal(average_ranks(a), scipy.stats.rankdata(a, method="average", axis=0))
+
+
+def test_split_rhat_and_bulk_ess_together_equal_each():
+    """The monitor's joint computation returns exactly what the two public functions do, for
+    continuous draws and for draws with ties and a constant coordinate."""
+    rng = np.random.default_rng(11)
+    x = rng.standard_normal((8, 60, 3))
+    x[:, :, 1] = np.round(x[:, :, 1])
+    x[:, :, 2] = 1.5
+    rhat, ess_value = split_rhat_and_bulk_ess(x)
+    np.testing.assert_array_equal(rhat, split_rhat(x))
+    np.testing.assert_array_equal(ess_value, bulk_ess(x))
+    assert np.isnan(rhat[2]) and np.isnan(ess_value[2])
 
 
 def test_split_rhat_iid_chains_pass():

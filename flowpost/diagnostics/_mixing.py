@@ -85,7 +85,6 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import fft as _sfft
 from scipy import special as _sspecial
-from scipy import stats as _sstats
 
 __all__ = [
     "MIN_DRAWS_PER_CHAIN",
@@ -154,13 +153,52 @@ def _split_halves(x: np.ndarray) -> np.ndarray:
     return np.concatenate([x[:, :half], x[:, x.shape[1] - half :]], axis=0)
 
 
+def _ranked(a: np.ndarray, transform: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """``transform`` (elementwise) of the average ranks of each column of a finite ``(S, P)``
+    array.
+
+    After a sort of each column, a run of equal values at sorted positions ``i .. j``
+    (0-based) has the rank ``(i + j) / 2 + 1``; the first and last position of each run are
+    running maxima / minima of the run boundaries. Without ties (continuous draws) every
+    column's ranks are a permutation of ``1 .. S``, so ``transform`` is applied to ``S``
+    values only and scattered.
+    """
+    rows = np.ascontiguousarray(a.T)  # one column per row: the sorts run along memory
+    s = rows.shape[1]
+    order = np.argsort(rows, axis=1)
+    ordered = np.take_along_axis(rows, order, axis=1)
+    starts = np.ones(rows.shape, dtype=bool)
+    starts[:, 1:] = ordered[:, 1:] != ordered[:, :-1]
+    if starts.all():
+        values = np.broadcast_to(transform(np.arange(1.0, s + 1.0)), rows.shape)
+    else:
+        index = np.broadcast_to(np.arange(s), rows.shape)
+        ends = np.ones(rows.shape, dtype=bool)
+        ends[:, :-1] = starts[:, 1:]
+        first = np.maximum.accumulate(np.where(starts, index, 0), axis=1)
+        last = np.minimum.accumulate(np.where(ends, index, s)[:, ::-1], axis=1)[:, ::-1]
+        values = transform((first + last) / 2.0 + 1.0)
+    out = np.empty(rows.shape, dtype=np.float64)
+    np.put_along_axis(out, order, values, axis=1)
+    return out.T
+
+
+def average_ranks(a: np.ndarray) -> np.ndarray:
+    """Ranks ``1 .. S`` of each column of a finite ``(S, P)`` array, ties given their average
+    rank: what ``scipy.stats.rankdata(a, method="average", axis=0)`` returns, with one sort
+    of all the columns instead of one call per column."""
+    return _ranked(np.asarray(a, dtype=np.float64), lambda r: r)
+
+
 def _normal_scores(x: np.ndarray) -> np.ndarray:
     """Pooled rank normalisation of finite ``(M, n, P)`` draws, column by column."""
     m, n, p = x.shape
     total = m * n
-    ranks = _sstats.rankdata(x.reshape(total, p), method="average", axis=0)
-    z = _sspecial.ndtri((ranks - 0.375) / (total + 0.25))  # the standard normal quantile
-    return z.reshape(m, n, p)
+
+    def score(ranks):
+        return _sspecial.ndtri((ranks - 0.375) / (total + 0.25))  # the standard normal quantile
+
+    return _ranked(x.reshape(total, p), score).reshape(m, n, p)
 
 
 # ---------------------------------------------------------------------------
@@ -258,9 +296,10 @@ def _classic_rhat(x: np.ndarray) -> np.ndarray:
     return np.where(all_equal, np.nan, rhat)
 
 
-def _rank_normalised_rhat(halves: np.ndarray) -> np.ndarray:
-    """The larger of the bulk and the folded R-hat of finite split chains, shape ``(P,)``."""
-    bulk = _classic_rhat(_normal_scores(halves))
+def _rank_normalised_rhat(halves: np.ndarray, scores: np.ndarray | None = None) -> np.ndarray:
+    """The larger of the bulk and the folded R-hat of finite split chains, shape ``(P,)``
+    (``scores``: their normal scores, when the caller has them already)."""
+    bulk = _classic_rhat(_normal_scores(halves) if scores is None else scores)
     median = np.median(halves, axis=(0, 1), keepdims=True)
     folded = _classic_rhat(_normal_scores(np.abs(halves - median)))
     # fmax: a nan from one version (e.g. folded draws all equal) yields the other.
@@ -448,6 +487,22 @@ def bulk_ess(draws: ArrayLike) -> float | np.ndarray:
     if ok.any():
         out[ok] = _ess_core(_normal_scores(_split_halves(x[:, :, ok])))
     return _finish(out, scalar)
+
+
+def split_rhat_and_bulk_ess(draws: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`split_rhat` and :func:`bulk_ess` of ``(chains, draws, params)`` draws together,
+    the split halves and their normal scores computed once for both (the monitor's figures
+    after every window). Returns two ``(params,)`` arrays, equal to the two functions'."""
+    x, _ = _as_draws(draws, allow_1d=False)
+    rhat = np.full(x.shape[2], np.nan)
+    ess_value = np.full(x.shape[2], np.nan)
+    ok = _usable(x)
+    if ok.any():
+        halves = _split_halves(x[:, :, ok])
+        scores = _normal_scores(halves)
+        rhat[ok] = _rank_normalised_rhat(halves, scores)
+        ess_value[ok] = _ess_core(scores)
+    return rhat, ess_value
 
 
 # ---------------------------------------------------------------------------

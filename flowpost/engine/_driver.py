@@ -197,6 +197,25 @@ def tape_stride(monitor: Monitor, window: int) -> int:
     return every if window % every == 0 else 1
 
 
+class Launched(NamedTuple):
+    """A window dispatched to the device (JAX's dispatch is asynchronous) and the monitor's
+    figures of its end, not yet fetched; ``source`` is the carry it started from."""
+
+    source: Carry
+    carry: Carry
+    stats: Any
+    taped: Any
+    measured: Any
+
+
+def _launch(stepper, controller, target, carry, key, step, n, tape_index, window, every, monitor) -> Launched:
+    t0, n_dev = jnp.asarray(step, jnp.int32), jnp.asarray(n, jnp.int32)
+    new, stats, taped = _window(
+        stepper, controller, target, carry, key, t0, n_dev, tape_index, length=window, tape_every=every
+    )
+    return Launched(carry, new, stats, taped, monitor.dispatch(target, new.state, step + n))
+
+
 def identity_of(stepper, controller, target) -> dict:
     """The fingerprints a checkpoint must match."""
     return {
@@ -301,13 +320,23 @@ def run(
         bar = tqdm(total=steps, initial=min(step, steps), unit="step", leave=False)
     windows_done = 0
     try:
+        ahead: Launched | None = None
         while step < steps:
             n = min(window, steps - step)
-            t0, n_dev = jnp.asarray(step, jnp.int32), jnp.asarray(n, jnp.int32)
-            new, stats, taped = _window(
-                stepper, controller, bound, carry, key, t0, n_dev, tape_index, length=window, tape_every=every
-            )
-            stats = {k: np.asarray(v)[:n] for k, v in jax.device_get(stats).items()}
+            launched = ahead if ahead is not None and ahead.source is carry else None
+            if launched is None:
+                launched = _launch(stepper, controller, bound, carry, key, step, n, tape_index, window, every, monitor)
+            new = launched.carry
+            # queue the next window now (assuming this one is kept), so that the device runs it
+            # while the host reads this one; dropped unused after a roll-back or a stop
+            ahead = None
+            if step + n < steps:
+                n_next = min(window, steps - step - n)
+                ahead = _launch(
+                    stepper, controller, bound, new, key, step + n, n_next, tape_index, window, every, monitor
+                )
+            stats, taped, measured = jax.device_get((launched.stats, launched.taped, launched.measured))
+            stats = {k: np.asarray(v)[:n] for k, v in stats.items()}
             taped = None if taped is None else np.asarray(taped)[: n // every]
             elapsed = time.perf_counter() - t_start
             record = monitor.read(
@@ -320,6 +349,7 @@ def run(
                 elapsed,
                 flow_time=float(new.flow_time),
                 reductions=reductions,
+                measured=measured,
                 tape_stride=every,
             )
             history.append(record)

@@ -70,8 +70,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from .._validate import boolean, callable_value, fail, integer, non_negative, positive, real
-from ..diagnostics._mixing import ThinnedTrail, bulk_ess, split_rhat
-from ..diagnostics._stein import stein_discrepancy
+from ..diagnostics import ThinnedTrail, split_rhat_and_bulk_ess, stein_discrepancy
 from ..model._target import Target
 from ..numerics import whiten
 from ..steppers.base import Stepper
@@ -223,20 +222,26 @@ class Monitor:
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
+    def dispatch(self, target: Target, state: Any, step: int) -> dict[str, Any]:
+        """Start computing :meth:`measure`'s figures on the device and return them without
+        waiting (JAX arrays; ``jax.device_get`` them later). The run queues the next window
+        behind this call, so the host's work on one window overlaps the device's on the next:
+        what it computes may depend only on what :meth:`open` fixed, never on :meth:`read`'s
+        bookkeeping of the window before."""
+        return _measure(
+            target,
+            state.x,
+            _score_of(state),
+            jnp.asarray(step, jnp.int32),
+            self._subset(state.x.shape[0]),
+            self.whitened,
+            self.discrepancy,
+        )
+
     def measure(self, target: Target, state: Any, step: int) -> dict[str, Any]:
         """The figures computed on the device for one window (ensemble moments, mean
         log-density, non-finite count and, when on, the discrepancy), in one compiled call."""
-        return jax.device_get(
-            _measure(
-                target,
-                state.x,
-                _score_of(state),
-                jnp.asarray(step, jnp.int32),
-                self._subset(state.x.shape[0]),
-                self.whitened,
-                self.discrepancy,
-            )
-        )
+        return jax.device_get(self.dispatch(target, state, step))
 
     def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
         """:meth:`measure` for a batch of ensembles (a leading member axis on every leaf of
@@ -364,8 +369,8 @@ class BareMonitor(Monitor):
     def open(self, target: Target, stepper: Stepper, state: Any) -> None:
         self.tape_particles = 0
 
-    def measure(self, target: Target, state: Any, step: int) -> dict[str, Any]:
-        return {"n_nonfinite": jax.device_get(_count_nonfinite(state.x))}
+    def dispatch(self, target: Target, state: Any, step: int) -> dict[str, Any]:
+        return {"n_nonfinite": _count_nonfinite(state.x)}
 
     def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
         bad = jax.device_get(_count_nonfinite_batch(states.x))
@@ -404,8 +409,7 @@ def chain_figures(groups: list[np.ndarray]) -> list[dict[str, float]]:
     for members in by_shape.values():
         joint = np.concatenate([groups[i] for i in members], axis=2)
         with np.errstate(all="ignore"):
-            rhat = np.asarray(split_rhat(joint), dtype=float)
-            ess = np.asarray(bulk_ess(joint), dtype=float)
+            rhat, ess = split_rhat_and_bulk_ess(joint)
         start = 0
         for i in members:
             d = groups[i].shape[2]
