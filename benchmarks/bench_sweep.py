@@ -72,8 +72,9 @@ def batched(n, steps) -> float:
 
 def main():
     for name, (n, steps) in SETTINGS.items():
-        seq = min(sequential(n, steps) for _ in range(2))
-        bat = min(batched(n, steps) for _ in range(2))
+        # interleaved (S B S B), so that a drift in the machine's speed hits both alike
+        pairs = [(sequential(n, steps), batched(n, steps)) for _ in range(2)]
+        seq, bat = min(s for s, _ in pairs), min(b for _, b in pairs)
         goal = "  (target <= 0.5)" if name == "pilot" else "  (no target: compute-bound steps)"
         print(
             f"[{name}: N = {n}, {steps} steps] ten sequential fp.run: {seq:.2f} s; one fp.sweep: {bat:.2f} s; "

@@ -39,6 +39,7 @@ if TYPE_CHECKING:  # pragma: no cover - for editors and type checkers
     from . import testing as testing
     from ._pytree import pytree_dataclass as pytree_dataclass
     from ._pytree import static as static
+    from .diagnostics import agreement_test as agreement_test
     from .engine import AcceptanceTarget as AcceptanceTarget
     from .engine import BareMonitor as BareMonitor
     from .engine import Constant as Constant
@@ -144,6 +145,7 @@ _WHERE = {
         )
     },
     **{n: "_pytree" for n in ("pytree_dataclass", "static")},
+    "agreement_test": "diagnostics",
 }
 _SUBMODULES = {"model", "steppers", "numerics", "diagnostics", "engine", "testing", "plotting", "demo"}
 
@@ -193,6 +195,7 @@ __all__ = [
     "Stepper",
     "Target",
     "Verdict",
+    "agreement_test",
     "demo",
     "diagnostics",
     "engine",

@@ -31,6 +31,7 @@ __all__ = [
     "non_negative",
     "open_unit",
     "positive",
+    "prng_key",
     "real",
 ]
 
@@ -154,15 +155,50 @@ def choice(name: str, value: Any, options: Iterable[str]) -> str:
     raise fail(name, expected, value, TypeError if not isinstance(value, str) else ValueError)
 
 
-def callable_value(name: str, value: Any, expected: str = "a callable") -> Any:
-    """A callable that is not a class."""
-    if callable(value) and not isinstance(value, type):
-        return value
-    raise fail(name, expected, value, TypeError)
+def callable_value(name: str, value: Any, expected: str = "a callable", nargs: int | None = None) -> Any:
+    """A callable that is not a class; with ``nargs``, one that accepts that many positional
+    arguments (read from its signature, when it has one)."""
+    if not (callable(value) and not isinstance(value, type)):
+        raise fail(name, expected, value, TypeError)
+    if nargs is not None:
+        import inspect
+
+        try:
+            sig = inspect.signature(value)
+        except (TypeError, ValueError):  # no signature to read (some builtins): the call will tell
+            return value
+        try:
+            sig.bind(*([None] * nargs))
+        except TypeError:
+            plural = "s" if nargs != 1 else ""
+            raise TypeError(
+                f"{name}: expected {expected}, called with {nargs} positional argument{plural}; got "
+                f"{describe(value)} with signature {sig}"
+            ) from None
+    return value
 
 
 def instance(name: str, value: Any, cls: type | tuple[type, ...], expected: str) -> Any:
     """An instance of ``cls`` (a class passed instead of an instance is named as such)."""
     if isinstance(value, cls):
+        return value
+    raise fail(name, expected, value, TypeError)
+
+
+def prng_key(name: str, value: Any) -> Any:
+    """One JAX PRNG key: a typed key of shape ``()`` (``jax.random.key(0)``) or a raw
+    ``uint32`` key of shape ``(2,)`` (``jax.random.PRNGKey(0)``); never a batch of keys, a
+    float array or an integer seed."""
+    import jax
+    import jax.numpy as jnp
+
+    expected = "one JAX PRNG key such as jax.random.key(0)"
+    if not isinstance(value, jax.Array):
+        raise fail(name, expected, value, TypeError)
+    if jnp.issubdtype(value.dtype, jax.dtypes.prng_key):
+        if value.shape == ():
+            return value
+        raise fail(name, expected + " (not a batch of keys)", value, TypeError)
+    if value.dtype == jnp.uint32 and value.shape == (2,):
         return value
     raise fail(name, expected, value, TypeError)

@@ -93,6 +93,8 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _plot(result, t, temp, path):
+    from .engine._files import atomic_write
+
     try:
         import matplotlib
 
@@ -115,11 +117,12 @@ def _plot(result, t, temp, path):
     ax.set_ylabel("temperature (C)")
     ax.legend()
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
+    kind = os.path.splitext(path)[1].lstrip(".").lower() or "png"
+    atomic_write(path, lambda fh: fig.savefig(fh, format=kind, dpi=100))  # a temporary, renamed
     plt.close(fig)
     print(f"Plot of the fit saved to {os.path.abspath(path)}")
     run_path = os.path.splitext(path)[0] + "_run.png"
     fig = result.plot(params=["k", "room", "sigma"], pair=("k", "room"))
-    fig.savefig(run_path, dpi=80)
+    atomic_write(run_path, lambda fh: fig.savefig(fh, format="png", dpi=80))
     plt.close(fig)
     print(f"Picture of the run (monitor curves, marginals) saved to {os.path.abspath(run_path)}")

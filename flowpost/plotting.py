@@ -11,6 +11,8 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from ._validate import fail
+
 if TYPE_CHECKING:  # pragma: no cover - matplotlib is optional
     from matplotlib.figure import Figure
 
@@ -45,14 +47,18 @@ def run_figure(result: Result, params: list[str] | None = None, pair: tuple[str,
     """
     plt = _plt()
     names, mat = result.draws()
+    if isinstance(params, str) or (params is not None and not isinstance(params, (list, tuple))):
+        raise fail("params", "a list of element names (e.g. ['sigma', 'w[2]']) or None", params, TypeError)
     params = list(params) if params is not None else names[:3]
     unknown = [p for p in params if p not in names]
     if unknown:
-        raise ValueError(f"params: {unknown} are not parameters of this result; choose from {names}")
+        raise ValueError(f"params: expected element names of this result, from {names}; got {unknown}")
     if pair is None and len(params) >= 2:
         pair = (params[0], params[1])
+    if pair is not None and not (isinstance(pair, (list, tuple)) and len(pair) == 2):
+        raise fail("pair", "two element names, e.g. ('a', 'b'), or None", pair, TypeError)
     if pair is not None and any(p not in names for p in pair):
-        raise ValueError(f"pair: {pair} are not both parameters of this result; choose from {names}")
+        raise ValueError(f"pair: expected two element names of this result, from {names}; got {tuple(pair)}")
 
     hist = result.history
     rows = [r for r in hist if "event" not in r]

@@ -74,7 +74,7 @@ def test_noise_scale_off_by_half_is_flagged():
 
 
 def test_bad_arguments_are_named():
-    with pytest.raises(ValueError, match="init: the number of particles"):
+    with pytest.raises(ValueError, match=r"^init: expected a number of particles L with L \+ 1 divisible"):
         calibrate(
             log_p,
             prior_draw,

@@ -108,7 +108,7 @@ MIN_DRAWS_PER_CHAIN = 4
 
 def _check_real(arr: np.ndarray, name: str) -> None:
     if arr.dtype.kind not in "biuf":
-        raise TypeError(f"{name} must hold real numbers; got an array of dtype {arr.dtype}")
+        raise TypeError(f"{name}: expected real numbers; got an array of dtype {arr.dtype}")
 
 
 def _as_draws(draws: ArrayLike, *, allow_1d: bool) -> tuple[np.ndarray, bool]:
@@ -125,11 +125,11 @@ def _as_draws(draws: ArrayLike, *, allow_1d: bool) -> tuple[np.ndarray, bool]:
     else:
         shapes = "(draws,), " if allow_1d else ""
         raise ValueError(
-            f"draws must have shape {shapes}(chains, draws) or (chains, draws, params); "
+            f"draws: expected shape {shapes}(chains, draws) or (chains, draws, params); "
             f"got an array with shape {arr.shape}"
         )
     if x.shape[0] == 0:
-        raise ValueError(f"draws must hold at least one chain; got shape {arr.shape}")
+        raise ValueError(f"draws: expected at least one chain; got shape {arr.shape}")
     return x, scalar
 
 
@@ -153,34 +153,46 @@ def _split_halves(x: np.ndarray) -> np.ndarray:
     return np.concatenate([x[:, :half], x[:, x.shape[1] - half :]], axis=0)
 
 
-def _ranked(a: np.ndarray, transform: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
-    """``transform`` (elementwise) of the average ranks of each column of a finite ``(S, P)``
-    array.
-
-    After a sort of each column, a run of equal values at sorted positions ``i .. j``
-    (0-based) has the rank ``(i + j) / 2 + 1``; the first and last position of each run are
-    running maxima / minima of the run boundaries. Without ties (continuous draws) every
-    column's ranks are a permutation of ``1 .. S``, so ``transform`` is applied to ``S``
-    values only and scattered.
-    """
+def _sorted_rows(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each column of ``(S, P)`` ``a`` sorted, as rows: ``order`` (the sorting indices) and
+    ``ordered`` (the sorted values), both ``(P, S)``."""
     rows = np.ascontiguousarray(a.T)  # one column per row: the sorts run along memory
-    s = rows.shape[1]
     order = np.argsort(rows, axis=1)
-    ordered = np.take_along_axis(rows, order, axis=1)
-    starts = np.ones(rows.shape, dtype=bool)
+    return order, np.take_along_axis(rows, order, axis=1)
+
+
+def _ranks_of_sorted(
+    order: np.ndarray, ordered: np.ndarray, transform: Callable[[np.ndarray], np.ndarray]
+) -> np.ndarray:
+    """``transform`` (elementwise) of the average ranks of rows sorted by :func:`_sorted_rows`,
+    back in the original places and as columns, ``(S, P)``.
+
+    A run of ``l`` equal sorted values starting at position ``i`` (0-based) has the rank
+    ``(2 i + l + 1) / 2``, the mean of ``i + 1 .. i + l``. Ranks are then half-integers in
+    ``[1, S]``, so ``transform`` is applied to those ``2 S - 1`` values only and looked up
+    (without ties every row's ranks are ``1 .. S``).
+    """
+    p, s = ordered.shape
+    starts = np.ones(ordered.shape, dtype=bool)
     starts[:, 1:] = ordered[:, 1:] != ordered[:, :-1]
     if starts.all():
-        values = np.broadcast_to(transform(np.arange(1.0, s + 1.0)), rows.shape)
+        values = np.broadcast_to(transform(np.arange(1.0, s + 1.0)), ordered.shape)
     else:
-        index = np.broadcast_to(np.arange(s), rows.shape)
-        ends = np.ones(rows.shape, dtype=bool)
-        ends[:, :-1] = starts[:, 1:]
-        first = np.maximum.accumulate(np.where(starts, index, 0), axis=1)
-        last = np.minimum.accumulate(np.where(ends, index, s)[:, ::-1], axis=1)[:, ::-1]
-        values = transform((first + last) / 2.0 + 1.0)
-    out = np.empty(rows.shape, dtype=np.float64)
+        flat = starts.ravel()  # a row's first value always starts a run: runs never span rows
+        first = np.flatnonzero(flat)
+        length = np.diff(first, append=flat.size)
+        twice_rank = 2 * (first % s) + length + 1
+        table = transform(np.arange(2, 2 * s + 1) / 2.0)  # table[k] is transform((k + 2) / 2)
+        values = table[twice_rank - 2][np.cumsum(flat) - 1].reshape(p, s)
+    out = np.empty(ordered.shape, dtype=np.float64)
     np.put_along_axis(out, order, values, axis=1)
     return out.T
+
+
+def _ranked(a: np.ndarray, transform: Callable[[np.ndarray], np.ndarray]) -> np.ndarray:
+    """``transform`` (elementwise) of the average ranks of each column of a finite ``(S, P)``
+    array (:func:`_ranks_of_sorted`)."""
+    return _ranks_of_sorted(*_sorted_rows(a), transform)
 
 
 def average_ranks(a: np.ndarray) -> np.ndarray:
@@ -190,15 +202,38 @@ def average_ranks(a: np.ndarray) -> np.ndarray:
     return _ranked(np.asarray(a, dtype=np.float64), lambda r: r)
 
 
-def _normal_scores(x: np.ndarray) -> np.ndarray:
-    """Pooled rank normalisation of finite ``(M, n, P)`` draws, column by column."""
-    m, n, p = x.shape
-    total = m * n
-
+def _score_of(total: int) -> Callable[[np.ndarray], np.ndarray]:
     def score(ranks):
         return _sspecial.ndtri((ranks - 0.375) / (total + 0.25))  # the standard normal quantile
 
-    return _ranked(x.reshape(total, p), score).reshape(m, n, p)
+    return score
+
+
+def _normal_scores(x: np.ndarray) -> np.ndarray:
+    """Pooled rank normalisation of finite ``(M, n, P)`` draws, column by column."""
+    m, n, p = x.shape
+    return _ranked(x.reshape(m * n, p), _score_of(m * n)).reshape(m, n, p)
+
+
+def _bulk_and_folded_scores(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The normal scores of finite ``(M, n, P)`` draws and of their folded values
+    ``|x - median(x)|`` (pooled median), from one sort of each column.
+
+    The folded values are sorted starting from the column's sorted order (the median is
+    read from it, and the order carries the folded ranks back to the draws).
+    """
+    m, n, p = x.shape
+    total = m * n
+    score = _score_of(total)
+    order, ordered = _sorted_rows(x.reshape(total, p))
+    bulk = _ranks_of_sorted(order, ordered, score)
+    median = (ordered[:, (total - 1) // 2] + ordered[:, total // 2]) / 2.0  # as np.median
+    folded = np.abs(ordered - median[:, None])
+    merge = np.argsort(folded, axis=1)
+    folded_scores = _ranks_of_sorted(
+        np.take_along_axis(order, merge, axis=1), np.take_along_axis(folded, merge, axis=1), score
+    )
+    return bulk.reshape(m, n, p), folded_scores.reshape(m, n, p)
 
 
 # ---------------------------------------------------------------------------
@@ -250,22 +285,22 @@ def autocorrelation(x: ArrayLike, *, axis: int = -1, max_lag: int | None = None)
     arr = np.asarray(x)
     _check_real(arr, "x")
     if arr.ndim == 0:
-        raise ValueError("x must have at least one axis (the time axis); got a scalar")
+        raise ValueError("x: expected at least one axis (the time axis); got a scalar")
     arr = arr.astype(np.float64, copy=False)
     if isinstance(axis, bool) or not isinstance(axis, numbers.Integral):
-        raise TypeError(f"axis must be an int; got {type(axis).__name__}")
+        raise TypeError(f"axis: expected an int; got {type(axis).__name__}")
     if not -arr.ndim <= axis < arr.ndim:
-        raise ValueError(f"axis must be in [-{arr.ndim}, {arr.ndim}) for x with {arr.ndim} axes; got {axis}")
+        raise ValueError(f"axis: expected an int in [-{arr.ndim}, {arr.ndim}) for x with {arr.ndim} axes; got {axis}")
     axis = int(axis) % arr.ndim
     n = arr.shape[axis]
     if n == 0:
-        raise ValueError("x must have at least one point along the time axis; got length 0")
+        raise ValueError("x: expected at least one point along the time axis; got length 0")
     if max_lag is None:
         max_lag = n - 1
     if isinstance(max_lag, bool) or not isinstance(max_lag, numbers.Integral):
-        raise TypeError(f"max_lag must be an int or None; got {type(max_lag).__name__}")
+        raise TypeError(f"max_lag: expected an int or None; got {type(max_lag).__name__}")
     if not 0 <= max_lag <= n - 1:
-        raise ValueError(f"max_lag must be in [0, {n - 1}] for a series of length {n}; got {max_lag}")
+        raise ValueError(f"max_lag: expected an int in [0, {n - 1}] for a series of length {n}; got {max_lag}")
     acov = _autocovariance(arr, axis)
     acov = np.take(acov, np.arange(max_lag + 1), axis=axis)
     lag0 = np.take(acov, [0], axis=axis)
@@ -296,14 +331,15 @@ def _classic_rhat(x: np.ndarray) -> np.ndarray:
     return np.where(all_equal, np.nan, rhat)
 
 
-def _rank_normalised_rhat(halves: np.ndarray, scores: np.ndarray | None = None) -> np.ndarray:
-    """The larger of the bulk and the folded R-hat of finite split chains, shape ``(P,)``
-    (``scores``: their normal scores, when the caller has them already)."""
-    bulk = _classic_rhat(_normal_scores(halves) if scores is None else scores)
-    median = np.median(halves, axis=(0, 1), keepdims=True)
-    folded = _classic_rhat(_normal_scores(np.abs(halves - median)))
+def _rhat_of_scores(bulk: np.ndarray, folded: np.ndarray) -> np.ndarray:
+    """The larger of the bulk and the folded R-hat, from the two sets of normal scores."""
     # fmax: a nan from one version (e.g. folded draws all equal) yields the other.
-    return np.fmax(bulk, folded)
+    return np.fmax(_classic_rhat(bulk), _classic_rhat(folded))
+
+
+def _rank_normalised_rhat(halves: np.ndarray) -> np.ndarray:
+    """The larger of the bulk and the folded R-hat of finite split chains, shape ``(P,)``."""
+    return _rhat_of_scores(*_bulk_and_folded_scores(halves))
 
 
 def _split_rhat_with(draws: ArrayLike, rhat_of: Callable[[np.ndarray], np.ndarray]) -> float | np.ndarray:
@@ -498,10 +534,9 @@ def split_rhat_and_bulk_ess(draws: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     ess_value = np.full(x.shape[2], np.nan)
     ok = _usable(x)
     if ok.any():
-        halves = _split_halves(x[:, :, ok])
-        scores = _normal_scores(halves)
-        rhat[ok] = _rank_normalised_rhat(halves, scores)
-        ess_value[ok] = _ess_core(scores)
+        bulk, folded = _bulk_and_folded_scores(_split_halves(x[:, :, ok]))
+        rhat[ok] = _rhat_of_scores(bulk, folded)
+        ess_value[ok] = _ess_core(bulk)
     return rhat, ess_value
 
 
@@ -512,9 +547,9 @@ def split_rhat_and_bulk_ess(draws: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
 
 def _positive_int(value: object, name: str) -> int:
     if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be a positive int; got {type(value).__name__}")
+        raise TypeError(f"{name}: expected a positive int; got {type(value).__name__}")
     if value < 1:
-        raise ValueError(f"{name} must be a positive int; got {value}")
+        raise ValueError(f"{name}: expected a positive int; got {value}")
     return int(value)
 
 
@@ -621,16 +656,16 @@ class ThinnedTrail:
         arr = np.asarray(block)
         _check_real(arr, "block")
         if arr.ndim != 3:
-            raise ValueError(f"block must have shape (steps, m, d); got an array with shape {arr.shape}")
+            raise ValueError(f"block: expected shape (steps, m, d); got an array with shape {arr.shape}")
         steps, m, d = arr.shape
         if m == 0 or d == 0:
-            raise ValueError(f"block must track at least one particle in at least one dimension; got shape {arr.shape}")
+            raise ValueError(f"block: expected at least one particle in at least one dimension; got shape {arr.shape}")
         if self._store is None:
             dtype = arr.dtype if arr.dtype.kind == "f" else np.float64
             self._store = np.empty((self._capacity, m, d), dtype=dtype)
         elif arr.shape[1:] != self._store.shape[1:]:
             raise ValueError(
-                f"block must have shape (steps, {self._store.shape[1]}, {self._store.shape[2]}) "
+                f"block: expected shape (steps, {self._store.shape[1]}, {self._store.shape[2]}) "
                 f"like the earlier pushes; got {arr.shape}"
             )
         stride = _positive_int(stride, "stride")
@@ -656,7 +691,9 @@ class ThinnedTrail:
     def draws(self) -> np.ndarray:
         """Held draws in time order, shape ``(size, m, d)`` (a copy)."""
         if self._store is None:
-            raise ValueError("the trail is empty: push a block of shape (steps, m, d) first")
+            raise ValueError(
+                "trail: expected a block pushed first (push(block), shape (steps, m, d)); got an empty trail"
+            )
         if self._size < self._capacity:
             return self._store[: self._size].copy()
         return np.concatenate([self._store[self._next :], self._store[: self._next]], axis=0)
@@ -689,8 +726,8 @@ class ThinnedTrail:
             return traj
         m = traj.shape[0]
         if isinstance(n_groups, bool) or not isinstance(n_groups, numbers.Integral):
-            raise TypeError(f"n_groups must be an int or None; got {type(n_groups).__name__}")
+            raise TypeError(f"n_groups: expected an int or None; got {type(n_groups).__name__}")
         if not 1 <= n_groups <= m:
-            raise ValueError(f"n_groups must be in [1, {m}] for {m} tracked particles; got {n_groups}")
+            raise ValueError(f"n_groups: expected an int in [1, {m}] for {m} tracked particles; got {n_groups}")
         k = m // int(n_groups)
         return traj[: int(n_groups) * k]

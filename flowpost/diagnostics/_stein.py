@@ -106,7 +106,7 @@ def stein_kernel(
     x, y = jnp.asarray(x), jnp.asarray(y)
     sx, sy = jnp.asarray(score_x), jnp.asarray(score_y)
     if not isinstance(kernel, RadialKernel):
-        raise TypeError(f"`kernel` must be a kernel config such as IMQ(); got {kernel!r}")
+        raise TypeError(f"kernel: expected a kernel config such as IMQ(); got {kernel!r}")
     dtype = jnp.result_type(x, y, sx, sy)
     s = kernel.resolve(scale, dtype)
     d = x.shape[-1]
@@ -122,7 +122,7 @@ def _check_inputs(x: ArrayLike, scores: ArrayLike) -> tuple[Array, Array]:
     x = as_points("x", x)
     scores = as_points("scores", scores)
     if scores.shape != x.shape:
-        raise ValueError(f"`scores` must have the same shape as `x` {x.shape}; got {scores.shape}")
+        raise ValueError(f"scores: expected the shape of x {x.shape}; got {scores.shape}")
     return x, scores
 
 
@@ -173,10 +173,10 @@ def squared_stein_discrepancy(
     n = x.shape[0]
     if subset is not None:
         if isinstance(subset, bool) or not isinstance(subset, int) or subset < 1:
-            raise ValueError(f"`subset` must be None or a positive int; got {subset!r}")
+            raise ValueError(f"subset: expected None or a positive int; got {subset!r}")
         if subset < n:
             if key is None:
-                raise ValueError("`key` is required when `subset` is smaller than N")
+                raise ValueError("key: expected a PRNG key when subset is smaller than N; got None")
             idx = jax.random.choice(key, n, (subset,), replace=False)
             x, scores = x[idx], scores[idx]
             n = subset
@@ -221,4 +221,5 @@ def stein_discrepancy(
     :func:`squared_stein_discrepancy` for the arguments.  Computed with the
     blocked primitive, memory ``O(block * N)``.
     """
+    x, scores = _check_inputs(x, scores)  # before the compiled call: a clear error for a non-array
     return jnp.sqrt(squared_stein_discrepancy(x, scores, kernel, block=block, subset=subset, key=key, scale=scale))

@@ -19,7 +19,7 @@ from __future__ import annotations
 import copy
 import time
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -30,16 +30,20 @@ from ..model._target import Target, as_target
 from ..steppers.base import Stepper, check_stepper
 from ._controllers import Controller, as_controller
 from ._driver import (
+    DRIVER_REDUCTIONS,
     START_SALT,
     Carry,
     check_run_args,
     check_start,
     check_step_contract,
     resolve_controller,
+    start_carry,
     tape_stride,
     taped_subset,
     window_body,
 )
+from ._figures import check_stop_rules
+from ._health import record_findings, spread_findings, step_bias_findings
 from ._history import History
 from ._monitor import Monitor, chain_figures
 from ._result import Result
@@ -47,14 +51,36 @@ from ._result import Result
 __all__ = ["sweep"]
 
 
-def batch_body(stepper, controllers, target, carry, keys, t0, n_active, tape_index, length, tape_every=1):
+def batch_body(
+    stepper,
+    controllers,
+    target,
+    carry,
+    keys,
+    t0,
+    n_active,
+    tape_index,
+    length,
+    tape_every=1,
+    shared_key=False,
+    aligned=False,
+):
+    """The run's window ``vmap``-ped over the members' controllers and carries.
+
+    ``shared_key``: ``keys`` is one key for all members (common random numbers), not a batch.
+    ``aligned``: ``t0`` and ``n_active`` are one step and one count for all members (every
+    member that moves is at the same step; the others' results are discarded by the caller).
+    What is shared is not batched: the noise and the loop's step index are then computed once
+    per step, not once per member, a program as cheap to compile as one run's window."""
+
     def one(ctrl, c, k, t, n):
         return window_body(stepper, ctrl, target, c, k, t, n, tape_index, length, tape_every)
 
-    return jax.vmap(one)(controllers, carry, keys, t0, n_active)
+    axes = (0, 0, None if shared_key else 0, None if aligned else 0, None if aligned else 0)
+    return jax.vmap(one, in_axes=axes)(controllers, carry, keys, t0, n_active)
 
 
-_batch_window = jax.jit(batch_body, static_argnames=("length", "tape_every"))
+_batch_window = jax.jit(batch_body, static_argnames=("length", "tape_every", "shared_key", "aligned"))
 
 
 @jax.jit
@@ -66,6 +92,41 @@ def _batch_start(stepper, controllers, target, x, keys):
     return jax.vmap(one)(controllers, keys)
 
 
+class _Launched(NamedTuple):
+    """A batched window dispatched to the device and its members' figures, not yet fetched:
+    ``source`` the carry it started from, ``n`` each member's steps in it."""
+
+    source: Carry
+    n: np.ndarray
+    carry: Carry
+    stats: Any
+    taped: Any
+    measured: Any
+
+
+def _one_key(key: jax.Array) -> bool:
+    """Whether ``key`` is one key (shared by the members), not a batch of keys."""
+    typed = jnp.issubdtype(key.dtype, jax.dtypes.prng_key)
+    return key.ndim == (0 if typed else 1)
+
+
+@jax.jit
+def _controller_starts(controllers, dtype_of):
+    return jax.vmap(lambda ctrl: ctrl.start(dtype_of.dtype))(controllers)
+
+
+def _shared_start(stepper, controller, controllers, target, x, key) -> Carry:
+    """The members' starting carry when they share one key: the stepper's start computed once
+    (by the run's own compiled start, so a member starts exactly as ``fp.run`` does) and
+    broadcast, each controller's own start state beside it. Cheaper to compile than the
+    ``vmap``-ped start over the members, which would compute the same state ``M`` times."""
+    one = start_carry(stepper, controller, target, x, key)
+    m = jax.tree_util.tree_leaves(controllers)[0].shape[0] if jax.tree_util.tree_leaves(controllers) else 1
+    state = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, (m, *a.shape)), one.state)
+    cstate = _controller_starts(controllers, jnp.zeros((), x.dtype))
+    return Carry(state, cstate, jnp.zeros((m,), x.dtype))
+
+
 def _member(tree, m: int):
     return jax.tree_util.tree_map(lambda a: a[m], tree)
 
@@ -74,7 +135,7 @@ def _members_of(step_size: Any, stepper, on_blowup: str, key: jax.Array) -> tupl
     batched_h = isinstance(step_size, (list, tuple)) or (hasattr(step_size, "shape") and np.ndim(step_size) == 1)
     typed = jnp.issubdtype(key.dtype, jax.dtypes.prng_key)
     batched_k = (typed and key.ndim == 1) or (not typed and key.ndim == 2)
-    if not typed and key.shape[-1:] != (2,):
+    if (typed and key.ndim > 1) or (not typed and (key.dtype != jnp.uint32 or key.shape[-1:] != (2,) or key.ndim > 2)):
         raise fail("key", "a JAX PRNG key or a batch of keys (jax.random.split(key, M))", key, TypeError)
     if batched_h:
         items = list(step_size)
@@ -86,6 +147,8 @@ def _members_of(step_size: Any, stepper, on_blowup: str, key: jax.Array) -> tupl
     else:
         controllers = [resolve_controller(stepper, step_size, on_blowup)]
     m_k = key.shape[0] if batched_k else None
+    if m_k == 0:
+        raise fail("key", "a non-empty batch of keys (jax.random.split(key, M), M >= 1)", key)
     m = len(controllers)
     if not batched_h and m_k is None:
         raise fail("step_size / key", "a batch: a sequence of step sizes and/or a batch of keys", step_size, TypeError)
@@ -140,22 +203,53 @@ def sweep(
     steps, window = check_run_args(steps, window, on_blowup, jax.random.key(0), None, 1, progress)
     if monitor is not None and not isinstance(monitor, Monitor):
         raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
+    if monitor is not None:
+        check_stop_rules(monitor, stepper, {**stepper.reductions, **DRIVER_REDUCTIONS})
     controllers, keys = _members_of(step_size, stepper, on_blowup, key)
     m = len(controllers)
     stacked = jax.tree_util.tree_map(lambda *a: jnp.stack([jnp.asarray(v) for v in a]), *controllers)
     bound, x0 = target.bind(init)
-    check_start(bound, x0)
+    found = check_start(bound, x0) + spread_findings(stepper, bound, x0)
     template = Monitor() if monitor is None else monitor
     monitors = [copy.deepcopy(template) for _ in range(m)]
 
-    carry = _batch_start(stepper, stacked, bound, x0, keys)
+    if _one_key(key):  # common random numbers: every member starts from the same state
+        carry = _shared_start(stepper, controllers[0], stacked, bound, x0, key)
+    else:
+        carry = _batch_start(stepper, stacked, bound, x0, keys)
     reductions = check_step_contract(stepper, controllers[0], bound, _member(carry, 0), keys[0])
     for mon in monitors:
         mon.open(bound, stepper, _member(carry, 0).state)
     tape_index = taped_subset(keys[0], x0.shape[0], min(monitors[0].tape_particles, x0.shape[0]))
     every = tape_stride(monitors[0], window)
 
+    shared_key = _one_key(key)
+
+    def launch(carry: Carry, mstep: np.ndarray, n: np.ndarray) -> _Launched:
+        # the members that move (n > 0) are usually all at one step: then the step and the
+        # count are passed once (members with n = 0 are computed too and discarded by the
+        # caller's mask); after a roll-back they differ and go per member (a second program)
+        moving = np.unique(mstep[n > 0])
+        aligned = moving.size == 1
+        new, stats, taped = _batch_window(
+            stepper,
+            stacked,
+            bound,
+            carry,
+            key if shared_key else keys,
+            np.int32(moving[0]) if aligned else np.array(mstep, np.int32),  # numpy: no eager op
+            np.int32(n[n > 0][0]) if aligned else np.array(n, np.int32),
+            tape_index,
+            length=window,
+            tape_every=every,
+            shared_key=shared_key,
+            aligned=aligned,
+        )
+        return _Launched(carry, n, new, stats, taped, template.dispatch_batch(bound, new.state, mstep + n))
+
     histories = [History() for _ in range(m)]
+    for h in histories:
+        record_findings(h, found, 0)
     status = ["done"] * m
     reasons = [f"step budget reached ({steps} steps)"] * m
     mstep = np.zeros(m, np.int64)  # steps done by each member (they differ after a roll-back)
@@ -169,35 +263,41 @@ def sweep(
 
         bar = tqdm(total=steps * m, unit="step", leave=False)
     try:
+        ahead: _Launched | None = None
         while (active & (mstep < steps)).any():
             n = np.where(active, np.minimum(window, steps - mstep), 0)
-            t0, n_dev = jnp.asarray(mstep, jnp.int32), jnp.asarray(n, jnp.int32)
-            new, stats, taped = _batch_window(
-                stepper, stacked, bound, carry, keys, t0, n_dev, tape_index, length=window
+            launched = ahead if ahead is not None and ahead.source is carry and np.array_equal(ahead.n, n) else None
+            if launched is None:
+                launched = launch(carry, mstep, n)
+            new = launched.carry
+            # queue the next window now, assuming every member keeps this one and none stops,
+            # so that the device runs it while the host reads this one (as fp.run does);
+            # dropped unused when a member rolls back or stops
+            n_next = np.where(active, np.minimum(window, steps - mstep - n), 0)
+            ahead = launch(new, mstep + n, n_next) if n_next.any() else None
+            # one transfer: stats, taped trails, the device figures of every member (computed
+            # in one vmapped call: the members' monitors share their settings, copies of one
+            # template), flow times, states (members are numpy slices of it)
+            stats, taped, measured, flow, host_states = jax.device_get(
+                (launched.stats, launched.taped, launched.measured, new.flow_time, new.state)
             )
-            stats = jax.device_get(stats)
-            taped = None if taped is None else np.asarray(taped)
+            state_leaves, state_def = jax.tree_util.tree_flatten(host_states)
             elapsed = time.perf_counter() - t_start
-            keep = active.copy()
-            # the device figures of every member in one compiled call (the members' monitors
-            # share their settings: copies of one template)
-            measured = template.measure_batch(bound, new.state, mstep + n)
-            flow = np.asarray(new.flow_time)
-            host_states = jax.device_get(new.state)  # one transfer; members are numpy slices of it
+            keep = n > 0  # members that did not move keep their carry (in an aligned window they were computed too)
             records = {}
             for i in np.nonzero(n)[0]:
                 ni = int(n[i])
                 records[i] = monitors[i].read(
                     bound,
                     stepper,
-                    _member(host_states, int(i)),
+                    jax.tree_util.tree_unflatten(state_def, [leaf[i] for leaf in state_leaves]),
                     {k: np.asarray(v)[i, :ni] for k, v in stats.items()},
                     None if taped is None else taped[i, : ni // every],
                     int(mstep[i]) + ni,
                     elapsed,
                     flow_time=float(flow[i]),
                     reductions=reductions,
-                    measured=measured[i],
+                    measured={k: v[i] for k, v in measured.items()},
                     tape_stride=every,
                     defer_chains=True,
                 )
@@ -211,7 +311,7 @@ def sweep(
                 ni = int(n[i])
                 histories[i].append(rec)
                 verdict = monitors[i].judge(histories[i])
-                if verdict.action == "rewind":
+                if verdict.action in ("rewind", "fail"):  # "fail": a smaller step is no remedy
                     keep[i] = False
                     back = _member(good, int(i))
                     event: dict[str, Any] = {
@@ -221,13 +321,12 @@ def sweep(
                         "back_to": int(mstep[i]),
                     }
                     ctrl = _member(stacked, int(i))
-                    smaller = ctrl.rewind(back.cstate)
+                    smaller = ctrl.rewind(back.cstate) if verdict.action == "rewind" else None
                     if smaller is None:
                         histories[i].append(event)
                         status[i] = "blow-up"
-                        reasons[i] = (
-                            f"{verdict.reason}; returned the last good ensemble (step {int(mstep[i])}). "
-                            "Try a smaller step_size or on_blowup='halve'."
+                        reasons[i] = f"{verdict.reason}; returned the last good ensemble (step {int(mstep[i])})." + (
+                            " Try a smaller step_size or on_blowup='halve'." if verdict.action == "rewind" else ""
                         )
                         active[i] = False
                     else:
@@ -238,15 +337,19 @@ def sweep(
                         good = _set_member(good, int(i), back._replace(cstate=smaller))
                     continue
                 mstep[i] += ni
+                record_findings(histories[i], verdict.warnings, int(mstep[i]))
                 if bar is not None:
                     bar.update(ni)
                 if verdict.action == "stop":
                     status[i], reasons[i] = "stopped", verdict.reason
                     active[i] = False
-            mask = jnp.asarray(keep)
-            carry = jax.tree_util.tree_map(
-                lambda a, b, mask=mask: jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, b), new, good
-            )
+            if keep.all():
+                carry = new
+            else:
+                mask = jnp.asarray(keep)
+                carry = jax.tree_util.tree_map(
+                    lambda a, b, mask=mask: jnp.where(mask.reshape((-1,) + (1,) * (a.ndim - 1)), a, b), new, good
+                )
             good = carry
     except KeyboardInterrupt:
         carry = good
@@ -258,6 +361,7 @@ def sweep(
     out = []
     total = time.perf_counter() - t_start
     for i in range(m):
+        record_findings(histories[i], step_bias_findings(histories[i]), int(mstep[i]))
         member = _member(carry, i)
         ctrl = _member(stacked, i)
         report = {**stepper.report(member.state), **ctrl.report(member.cstate)}

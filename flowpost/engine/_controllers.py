@@ -227,12 +227,27 @@ class Schedule(Controller):
     fn: Callable[[jax.Array], jax.Array] = static()
 
     def __post_init__(self) -> None:
-        callable_value("fn", self.fn, "a function of the step t returning the step size")
+        callable_value("fn", self.fn, "a function of the step t returning the step size", nargs=1)
+        try:  # the first step, concretely (later steps are traced; start() reports a failure)
+            h0 = float(np.asarray(self.fn(jnp.zeros((), jnp.int32))))
+        except Exception:
+            h0 = None
+        if h0 is not None and not (np.isfinite(h0) and h0 > 0):
+            raise ValueError(f"fn: expected a function returning a positive finite step size; got fn(0) = {h0:g}")
 
     def start(self, dtype: Any) -> dict[str, Any]:
-        out = jax.eval_shape(self.fn, jax.ShapeDtypeStruct((), jnp.int32))
+        try:
+            out = jax.eval_shape(self.fn, jax.ShapeDtypeStruct((), jnp.int32))
+        except Exception as err:
+            first = str(err).splitlines()[0] if str(err) else ""
+            raise TypeError(
+                "fn: expected a function of the step t (an int32 array), written with jax.numpy, "
+                f"returning a scalar step size; got {type(err).__name__}: {first}"
+            ) from err
         if getattr(out, "shape", None) != ():
             raise fail("fn", "a function returning a scalar step size", out, TypeError)
+        if not (jnp.issubdtype(out.dtype, jnp.floating) or jnp.issubdtype(out.dtype, jnp.integer)):
+            raise fail("fn", "a function returning a real step size", out.dtype, TypeError)
         return {"dtype_probe": jnp.zeros((), dtype)}
 
     def step_size(self, cstate: dict[str, Any], t: jax.Array) -> jax.Array:

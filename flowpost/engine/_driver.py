@@ -28,11 +28,15 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .._validate import choice, fail, integer, non_negative
+from .._validate import choice, fail, instance, integer, non_negative, prng_key
 from ..model._target import Target, as_target
+from ..model._user_code import nonfinite_data
 from ..steppers.base import Stepper, check_stats, check_stepper
 from ._checkpoint import fingerprint, load_checkpoint, save_checkpoint, target_fingerprint
 from ._controllers import Controller, Halving, as_controller
+from ._figures import check_stop_rules
+from ._files import check_writable
+from ._health import Finding, record_findings, score_findings, spread_findings, step_bias_findings
 from ._history import History
 from ._monitor import Monitor
 from ._result import Result
@@ -41,6 +45,7 @@ __all__ = ["DRIVER_REDUCTIONS", "Carry", "evolve", "resolve_controller", "run"]
 
 START_SALT = 0x7FFFFFFF  # the start key is fold_in(key, START_SALT); step t uses fold_in(key, t)
 TAPE_SALT = 0x7FFFFFFE  # the taped particles are a random subset drawn with fold_in(key, TAPE_SALT)
+MAX_STEPS = TAPE_SALT  # step indices t < MAX_STEPS: an int32, below both salts
 
 #: Stats the driver adds to every step's: the step size used.
 DRIVER_REDUCTIONS = {"step_size": "mean"}
@@ -96,7 +101,9 @@ _window = jax.jit(window_body, static_argnames=("length", "tape_every"))
 
 
 @jax.jit
-def _start(stepper, controller, target, x, key):
+def start_carry(stepper, controller, target, x, key):
+    """The carry a run starts from: the stepper's start state (key ``fold_in(key, START_SALT)``),
+    the controller's, and flow time 0."""
     state = stepper.start(target, x, jax.random.fold_in(key, START_SALT))
     return Carry(state, controller.start(x.dtype), jnp.zeros((), x.dtype))
 
@@ -106,7 +113,10 @@ def _value_and_score(target, x):
     return target.value_and_score(x)
 
 
-def check_start(target: Target, x: jax.Array) -> None:
+def check_start(target: Target, x: jax.Array) -> list[Finding]:
+    """Refuse a start where log_p or its score is not finite, or where the score is exactly
+    zero where the particles differ; return the start's other findings (a constant score), to
+    be recorded in the run's history (:mod:`flowpost.engine` (health))."""
     logp, score = _value_and_score(target, x)
     logp, score = np.asarray(logp), np.asarray(score)
     bad_lp = ~np.isfinite(logp)
@@ -121,12 +131,21 @@ def check_start(target: Target, x: jax.Array) -> None:
             what.append(f"log-density non-finite at {int(bad_lp.sum())}")
         if bad_sc.any():
             what.append(f"score non-finite at {int(bad_sc.any(axis=1).sum())} (parameters: {', '.join(params)})")
+        held = nonfinite_data(target.data)  # NaN in the data: the data are at fault, not init
+        if held:
+            raise ValueError(
+                f"data: expected finite values (log_p or its score is non-finite at {int(bad.sum())} of "
+                f"{x.shape[0]} starting particles); got NaN or infinite values in {', '.join(held)} "
+                "(drop or mask them before building the Target)"
+            )
+        everywhere = " If log_p is non-finite everywhere, check log_p itself." if bad.all() else ""
         raise ValueError(
             f"init: expected starting particles where log_p and its score are finite; got "
             f"{int(bad.sum())} of {x.shape[0]} particles with non-finite values "
             f"({'; '.join(what)}); first bad particle index {int(np.argmax(bad))}. Start the "
-            "particles where log_p is finite (e.g. near the prior's centre)."
+            f"particles where log_p is finite (e.g. near the prior's centre).{everywhere}"
         )
+    return score_findings(target, x, logp, score)
 
 
 def resolve_controller(stepper: Stepper, step_size: Any, on_blowup: str) -> Controller:
@@ -161,8 +180,8 @@ def check_step_contract(stepper, controller: Controller, target: Target, carry: 
 
 
 def check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress):
-    steps = integer("steps", steps, minimum=0)
-    window = integer("window", window, minimum=1)
+    steps = integer("steps", steps, minimum=0, maximum=MAX_STEPS)
+    window = integer("window", window, minimum=1, maximum=MAX_STEPS)
     choice("on_blowup", on_blowup, ("stop", "halve"))
     if not isinstance(key, jax.Array):
         raise fail("key", "a JAX PRNG key such as jax.random.key(0)", key, TypeError)
@@ -209,7 +228,7 @@ class Launched(NamedTuple):
 
 
 def _launch(stepper, controller, target, carry, key, step, n, tape_index, window, every, monitor) -> Launched:
-    t0, n_dev = jnp.asarray(step, jnp.int32), jnp.asarray(n, jnp.int32)
+    t0, n_dev = np.int32(step), np.int32(n)  # numpy scalars: passed to the window without an eager op
     new, stats, taped = _window(
         stepper, controller, target, carry, key, t0, n_dev, tape_index, length=window, tape_every=every
     )
@@ -285,31 +304,48 @@ def run(
     Returns
     -------
     Result
-        Particles in the user's pytree, the monitor's history, why the run stopped.
+        Particles in the user's pytree, the monitor's history, why the run stopped, and
+        ``warnings``: what makes the answer doubtful although the run ended (a stuck or
+        collapsed ensemble, every proposal rejected, lost float resolution, a step bias left
+        after halving; :mod:`flowpost.engine` (health)), also counted in ``reason``.
+
+    Notes
+    -----
+    Refused before the first step: a score that is exactly zero where the starting particles
+    differ (a rounding or integer cast inside ``log_p``) and a start the stepper cannot leave
+    (its ``needs_spread`` declaration: SVGD with coinciding particles, EnsembleLangevin with
+    ``N <= d``). ``log_p = +inf`` reached mid-run is a defect of ``log_p``, the same for every
+    stepper: the run returns the last good window with status ``"blow-up"`` and a reason naming
+    ``log_p``, without halving the step (whatever ``on_blowup`` says).
     """
     target = as_target(target)
     check_stepper(stepper)
     steps, window = check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress)
     _check_key(key)
+    checkpoint = None if checkpoint is None else check_writable(checkpoint, "checkpoint")  # before any work
     if monitor is not None and not isinstance(monitor, Monitor):
         raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
+    if monitor is not None:
+        check_stop_rules(monitor, stepper, {**stepper.reductions, **DRIVER_REDUCTIONS})
     controller = resolve_controller(stepper, step_size, on_blowup)
     bound, x0 = target.bind(init)
-    check_start(bound, x0)
+    found = check_start(bound, x0) + spread_findings(stepper, bound, x0)
     monitor = Monitor() if monitor is None else monitor
 
-    carry = _start(stepper, controller, bound, x0, key)
+    carry = start_carry(stepper, controller, bound, x0, key)
     reductions = check_step_contract(stepper, controller, bound, carry, key)
     identity = identity_of(stepper, controller, bound)
     step = 0
     history = History()
     if resume is not None:
         carry, step, key, history = load_checkpoint(resume, carry, identity)
+    else:
+        record_findings(history, found, step)
     monitor.open(bound, stepper, carry.state)
     tape_index = taped_subset(key, x0.shape[0], min(monitor.tape_particles, x0.shape[0]))
     every = tape_stride(monitor, window)
 
-    good, good_step = carry, step
+    good, good_step, good_len = carry, step, len(history)  # the committed ensemble and its history
     status, reason = "done", f"step budget reached ({steps} steps)"
     events: list[str] = []
     t_start = time.perf_counter()
@@ -354,7 +390,7 @@ def run(
             )
             history.append(record)
             verdict = monitor.judge(history)
-            if verdict.action == "rewind":
+            if verdict.action in ("rewind", "fail"):  # "fail": a smaller step is no remedy
                 event: dict[str, Any] = {
                     "step": int(step + n),
                     "event": "rollback",
@@ -362,25 +398,26 @@ def run(
                     "back_to": int(good_step),
                 }
                 carry, step = good, good_step
-                smaller = controller.rewind(carry.cstate)
+                smaller = controller.rewind(carry.cstate) if verdict.action == "rewind" else None
                 if smaller is not None:
                     carry = carry._replace(cstate=smaller)
-                    good = carry
                     event["action"] = f"halved the step: {controller.describe(smaller)}"
                     history.append(event)
+                    good, good_len = carry, len(history)
                     events.append(f"{verdict.reason}: rolled back to step {good_step}, {event['action']}")
                     monitor.open(bound, stepper, carry.state)
                     continue
                 history.append(event)
                 status = "blow-up"
-                reason = (
-                    f"{verdict.reason}; returned the last good ensemble (step {good_step}). "
-                    "Try a smaller step_size, on_blowup='halve', or an implicit stepper "
-                    "(ImplicitLangevin, JKO)."
+                reason = f"{verdict.reason}; returned the last good ensemble (step {good_step})." + (
+                    " Try a smaller step_size, on_blowup='halve', or an implicit stepper (ImplicitLangevin, JKO)."
+                    if verdict.action == "rewind"
+                    else ""
                 )
                 break
             carry, step = new, step + n
-            good, good_step = carry, step
+            record_findings(history, verdict.warnings, step)  # the kept window's findings
+            good, good_step, good_len = carry, step, len(history)
             windows_done += 1
             if bar is not None:
                 bar.update(n)
@@ -394,12 +431,14 @@ def run(
                 status, reason = "stopped", f"time budget reached ({elapsed:.1f} s of {time_budget} s)"
                 break
     except KeyboardInterrupt:
-        carry, step = good, good_step
+        # back to the last commit: a record of a window read but not committed goes too
+        carry, step, history = good, good_step, History(history.records[:good_len])
         status, reason = "interrupted", f"interrupted by the user at step {step}"
     finally:
         if bar is not None:
             bar.close()
-    if checkpoint is not None and status != "interrupted":
+    record_findings(history, step_bias_findings(history), step)
+    if checkpoint is not None:  # after an interrupt too: the last committed ensemble
         save_checkpoint(checkpoint, carry, step, key, history, identity, window)
     report = {**stepper.report(carry.state), **controller.report(carry.cstate)}
     return Result(
@@ -429,7 +468,11 @@ def evolve(
     be ``jit``-ted and ``vmap``-ped, for example over the data of many targets (simulation-based
     calibration does this). Returns the final state.
     """
-    controller = stepper.default_controller() if controller is None else controller
+    check_stepper(stepper)
+    steps = integer("steps", steps, minimum=0, maximum=MAX_STEPS)
+    prng_key("key", key)
+    instance("target", target, Target, "a bound flowpost.Target (target.bind(init) returns one)").bound_layout()
+    controller = stepper.default_controller() if controller is None else as_controller(controller, "controller")
     state = stepper.start(target, x, jax.random.fold_in(key, START_SALT))
     carry = Carry(state, controller.start(x.dtype), jnp.zeros((), x.dtype))
 
@@ -437,5 +480,5 @@ def evolve(
         new, _ = _one_step(stepper, controller, target, c, key, t)
         return new, None
 
-    carry, _ = jax.lax.scan(body, carry, jnp.arange(int(steps), dtype=jnp.int32))
+    carry, _ = jax.lax.scan(body, carry, jnp.arange(steps, dtype=jnp.int32))
     return carry.state

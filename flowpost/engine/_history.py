@@ -91,30 +91,59 @@ class History:
         """Every figure as an array over the windows (strings as an array of str)."""
         return {k: self.column(k) for k in self.keys()}
 
+    def scalar_figures(self) -> list[str]:
+        """The figures whose every recorded value is a number (no arrays, no strings)."""
+        return [
+            k
+            for k in self.keys()
+            if all(np.ndim(r.get(k, 0.0)) == 0 and not isinstance(r.get(k, 0.0), str) for r in self.records)
+        ]
+
     def table(self, names: list[str] | None = None, width: int = 11) -> str:
-        """A plain-text table of the scalar figures, one row per window."""
+        """A plain-text table of the scalar figures, one row per window. Each column is at
+        least ``width`` characters wide and as wide as its name: names are never cut."""
         if names is None:
-            names = [
-                k
-                for k in self.keys()
-                if all(np.ndim(r.get(k, 0.0)) == 0 and not isinstance(r.get(k, 0.0), str) for r in self.records)
-            ]
-        head = " ".join(f"{n[:width]:>{width}}" for n in names)
+            names = self.scalar_figures()
+        widths = [max(width, len(n)) for n in names]
+        head = " ".join(f"{n:>{w}}" for n, w in zip(names, widths))
         lines = [head, "-" * len(head)]
         for r in self.records:
             cells = []
-            for n in names:
+            for n, w in zip(names, widths):
                 v = r.get(n)
                 if v is None:
-                    cells.append(f"{'':>{width}}")
+                    cells.append(f"{'':>{w}}")
                 elif isinstance(v, (int, np.integer)) or (
                     isinstance(v, float) and float(v).is_integer() and abs(v) < 1e9 and n in ("step", "window")
                 ):
-                    cells.append(f"{int(v):>{width}d}")
+                    cells.append(f"{int(v):>{w}d}")
                 else:
-                    cells.append(f"{float(v):>{width}.4g}")
+                    cells.append(f"{float(v):>{w}.4g}")
             lines.append(" ".join(cells))
         return "\n".join(lines)
+
+    def to_frame(self):
+        """The records as a ``pandas.DataFrame`` (the ``export`` extra): one row per record,
+        windows and events in order, one column per scalar figure (numbers, and strings such
+        as an event's name); array-valued figures are left out (see :meth:`column`)."""
+        from ._export import history_frame
+
+        return history_frame(self)
+
+    def __repr__(self) -> str:
+        wins = self.windows()
+        n_events = len(self.records) - len(wins)
+        if not wins:
+            return f"<flowpost History: 0 windows, {n_events} event(s)>"
+        last = wins[-1]
+        step = last.get("step")
+        steps = f", {int(step)} steps" if isinstance(step, (int, float, np.integer, np.floating)) else ""
+        figures = ", ".join(
+            f"{k}={float(v):.4g}"
+            for k, v in last.items()
+            if k != "step" and not isinstance(v, str) and np.ndim(v) == 0 and v is not None
+        )
+        return f"<flowpost History: {len(wins)} windows{steps}, {n_events} event(s); last window: {figures}>"
 
     def to_json(self) -> list[dict[str, Any]]:
         return [{k: _jsonable(v) for k, v in r.items()} for r in self.records]

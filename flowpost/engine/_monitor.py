@@ -24,8 +24,10 @@ measured=None, defer_chains=False, tape_stride=1) -> dict``
     window's record.
 ``judge(history) -> Verdict``
     Looks at the history (the new record is its last) and returns a :class:`Verdict`:
-    ``"go"``, ``"stop"`` (with the reason) or ``"rewind"`` (roll back to the last good window,
-    with the reason).
+    ``"go"``, ``"stop"`` (with the reason), ``"rewind"`` (roll back to the last good window,
+    with the reason; the controller may offer a smaller step) or ``"fail"`` (roll back and end
+    the run as a blow-up whatever ``on_blowup`` says: a smaller step is no remedy), and the
+    window's findings in ``warnings`` (recorded in the history, :mod:`flowpost.engine` (health)).
 ``headline(record) -> dict``
     A few short figures for the progress bar.
 
@@ -57,6 +59,19 @@ Stop rules (the record of the window that stops the run says which, and so does
 ``Result.reason``): a target discrepancy, a plateau, and a user rule on the history; the
 step and time budgets live in :func:`flowpost.run`. Blow-ups (non-finite particles or an
 explosive growth of the spread) ask the driver to roll back.
+
+``log_p = +inf`` (policy, the same for every stepper): a log-density is finite or ``-inf``, so
+``+inf`` at a particle is a defect of ``log_p``, not of the step. The monitor evaluates
+``log_p`` at the ensemble after every window (``n_posinf``, particles with finite coordinates
+where ``log_p = +inf``); on any it says ``"fail"``: the run returns the last good window with
+status ``"blow-up"`` and a reason naming ``log_p``, without halving the step. (MALA accepts a
+proposal at ``+inf``, as its Metropolis ratio says, so it reaches the monitor like any other
+stepper's move.)
+
+Findings (:mod:`flowpost.engine` (health)): after every window the monitor also looks for a
+stuck ensemble (no particle moved), an acceptance below 1% and collapsed coordinates (spread
+at most ``4 eps |mean|``: all particles equal there, or lost float resolution) and hands them
+to the driver in the verdict's ``warnings``; they end up in ``Result.warnings``.
 """
 
 from __future__ import annotations
@@ -74,16 +89,20 @@ from ..diagnostics import ThinnedTrail, split_rhat_and_bulk_ess, stein_discrepan
 from ..model._target import Target
 from ..numerics import whiten
 from ..steppers.base import Stepper
+from ._health import Finding, window_findings
 from ._history import History
 
 __all__ = ["BareMonitor", "Monitor", "Verdict", "chain_figures", "summarise_stats"]
 
 
 class Verdict(NamedTuple):
-    """What the monitor decides after a window: ``action`` in {"go", "stop", "rewind"}."""
+    """What the monitor decides after a window: ``action`` in {"go", "stop", "rewind",
+    "fail"}, the ``reason``, and the window's findings (``(kind, message)`` pairs) in
+    ``warnings``, which the driver records whatever the action."""
 
     action: str
     reason: str = ""
+    warnings: tuple[Finding, ...] = ()
 
 
 GO = Verdict("go")
@@ -123,7 +142,14 @@ def _ensemble_figures_body(target, x):
     logp_ok = finite & jnp.isfinite(logp)
     mean_logp = jnp.sum(jnp.where(logp_ok, logp, 0.0)) / jnp.maximum(jnp.sum(logp_ok), 1)
     n_bad = n_bad + jnp.sum(finite & ~jnp.isfinite(logp))
-    return {"mean_logp": mean_logp, "centre": centre, "spread": jnp.sqrt(var), "n_nonfinite": n_bad}
+    n_posinf = jnp.sum(finite & (logp == jnp.inf))  # a defect of log_p (module docstring)
+    return {
+        "mean_logp": mean_logp,
+        "centre": centre,
+        "spread": jnp.sqrt(var),
+        "n_nonfinite": n_bad,
+        "n_posinf": n_posinf,
+    }
 
 
 class Monitor:
@@ -184,13 +210,21 @@ class Monitor:
         integer("trail_capacity", trail_capacity, minimum=8)
         if target_discrepancy is not None:
             positive("target_discrepancy", target_discrepancy)
+            if not discrepancy:
+                raise fail("target_discrepancy", "None when discrepancy=False (no ksd is computed)", target_discrepancy)
         if plateau is not None:
             if not (isinstance(plateau, tuple) and len(plateau) == 3 and isinstance(plateau[0], str)):
                 raise fail("plateau", "(figure name, M >= 1, tol >= 0)", plateau, TypeError)
+            if plateau[0] in ("centre", "spread") or (plateau[0] == "ksd" and not discrepancy):
+                raise fail(
+                    "plateau",
+                    "a scalar figure of the history (e.g. 'ksd', 'mean_logp'; 'ksd' needs discrepancy=True)",
+                    plateau[0],
+                )
             integer("plateau[1]", plateau[1], minimum=1)
             non_negative("plateau[2]", plateau[2])
         if stop_when is not None:
-            callable_value("stop_when", stop_when, "a callable on the history")
+            callable_value("stop_when", stop_when, "a callable on the history", nargs=1)
         real("growth_limit", growth_limit, low=1.0, low_open=True, expected="a finite number > 1")
         self.discrepancy = bool(discrepancy)
         self.discrepancy_points = int(discrepancy_points)
@@ -209,6 +243,10 @@ class Monitor:
         self._scale_set = False
         self._trail = None
         self._clock = None
+        self._findings: tuple[Finding, ...] = ()
+        self._dtype = np.dtype(np.float32)
+        self._n = 0
+        self._stochastic = True
 
     def open(self, target: Target, stepper: Stepper, state: Any) -> None:
         fig = jax.device_get(_ensemble_figures(target, state.x))
@@ -218,7 +256,10 @@ class Monitor:
         self._first_spread = float(np.nanmax(fig["spread"])) if np.size(fig["spread"]) else 0.0
         self._scale_set = False
         self._clock = None
+        self._findings = ()
+        self._dtype, self._n = np.dtype(state.x.dtype), int(state.x.shape[0])
         stochastic = stepper.stochastic
+        self._stochastic = bool(stochastic)
         self.tape_particles = min(self.trail_particles, state.x.shape[0]) if stochastic else 0
         self._trail = ThinnedTrail(self.trail_capacity, self.trail_thin) if self.tape_particles else None
 
@@ -232,7 +273,7 @@ class Monitor:
             target,
             state.x,
             _score_of(state),
-            jnp.asarray(step, jnp.int32),
+            np.int32(step),
             self._subset(state.x.shape[0]),
             self.whitened,
             self.discrepancy,
@@ -243,20 +284,24 @@ class Monitor:
         log-density, non-finite count and, when on, the discrepancy), in one compiled call."""
         return jax.device_get(self.dispatch(target, state, step))
 
-    def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
-        """:meth:`measure` for a batch of ensembles (a leading member axis on every leaf of
-        ``states``, one step per member) in one compiled, ``vmap``-ped call."""
-        out = jax.device_get(
-            _measure_batch(
-                target,
-                states.x,
-                _score_of(states),
-                jnp.asarray(steps, jnp.int32),
-                self._subset(states.x.shape[1]),
-                self.whitened,
-                self.discrepancy,
-            )
+    def dispatch_batch(self, target: Target, states: Any, steps: Any) -> dict[str, Any]:
+        """:meth:`dispatch` for a batch of ensembles (a leading member axis on every leaf of
+        ``states``, one step per member): one compiled, ``vmap``-ped call, not waited for; every
+        figure comes back with the member axis first."""
+        return _measure_batch(
+            target,
+            states.x,
+            _score_of(states),
+            np.asarray(steps, np.int32),
+            self._subset(states.x.shape[1]),
+            self.whitened,
+            self.discrepancy,
         )
+
+    def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
+        """:meth:`measure` for a batch of ensembles: :meth:`dispatch_batch`, fetched and cut
+        into one record of figures per member."""
+        out = jax.device_get(self.dispatch_batch(target, states, steps))
         return [{k: v[i] for k, v in out.items()} for i in range(len(steps))]
 
     def _subset(self, n: int) -> int:
@@ -288,6 +333,8 @@ class Monitor:
         rec["n_nonfinite"] = int(fig["n_nonfinite"])
         rec["centre"] = np.asarray(fig["centre"], dtype=float)
         rec["spread"] = np.asarray(fig["spread"], dtype=float)
+        posinf = int(fig["n_posinf"]) if "n_posinf" in fig else 0
+        before = None if self._prev is None else (self._prev[1], self._prev[2])
         if self._prev is not None:
             t0, c0, sd0 = self._prev
             t0 = self._clock if t0 is None else t0
@@ -310,6 +357,19 @@ class Monitor:
                 if self._trail.size >= 8 and not defer_chains:
                     rec.update(chain_figures([self._trail.groups()])[0])
         rec.update(summarise_stats(stats, reductions))
+        self._findings = tuple(
+            window_findings(
+                target,
+                before,
+                rec,
+                n=self._n,
+                eps=float(np.finfo(self._dtype).eps),
+                dtype_name=self._dtype.name,
+                stochastic=self._stochastic,
+            )
+        )
+        if posinf:
+            rec["n_posinf"] = posinf
         return rec
 
     def chains(self) -> np.ndarray | None:
@@ -320,7 +380,18 @@ class Monitor:
         return self._trail.groups()
 
     def judge(self, history: History) -> Verdict:
+        verdict = self._decide(history)
+        return verdict._replace(warnings=self._findings) if self._findings else verdict
+
+    def _decide(self, history: History) -> Verdict:
         rec = history.last_record
+        if rec.get("n_posinf", 0) > 0:
+            return Verdict(
+                "fail",
+                f"log_p: expected a log-density that is finite or -inf; got log_p = +inf at {rec['n_posinf']} "
+                f"particle(s) at step {rec['step']} (a log-density cannot be +inf: check log_p for a log of "
+                "a zero denominator, a division by zero or a missing minus sign)",
+            )
         if rec["n_nonfinite"] > 0:
             return _nonfinite(rec)
         big = float(np.max(rec["spread"])) if np.size(rec["spread"]) else 0.0
@@ -372,9 +443,8 @@ class BareMonitor(Monitor):
     def dispatch(self, target: Target, state: Any, step: int) -> dict[str, Any]:
         return {"n_nonfinite": _count_nonfinite(state.x)}
 
-    def measure_batch(self, target: Target, states: Any, steps: Any) -> list[dict[str, Any]]:
-        bad = jax.device_get(_count_nonfinite_batch(states.x))
-        return [{"n_nonfinite": bad[i]} for i in range(len(steps))]
+    def dispatch_batch(self, target: Target, states: Any, steps: Any) -> dict[str, Any]:
+        return {"n_nonfinite": _count_nonfinite_batch(states.x)}
 
     def chains(self) -> np.ndarray | None:
         return None

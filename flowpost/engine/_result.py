@@ -3,27 +3,31 @@ history, why the run stopped, a text summary, and save / load.
 
 File format (ours): a NumPy ``.npz`` archive read with ``allow_pickle=False``, holding
 
-- ``meta``: a JSON string with ``{"format": "flowpost-result", "version": 1, ...}``, the
+- ``meta``: a JSON string with ``{"format": "flowpost-result", "version": 2, ...}``, the
   parameter names, shapes and supports, the status, the stepper's description and report,
   and the history records;
 - ``u``: the unconstrained ``(N, d)`` ensemble;
-- ``p:<name>``: each parameter's constrained values, shape ``(N, ...)``.
+- ``p:<name>``: each parameter's constrained values, shape ``(N, ...)``;
+- ``digest``: a SHA-256 over the members (:mod:`flowpost.engine._files`).
 
-Loading never executes code from the file; a file that is not ours or is damaged raises a
-``ValueError`` that says so.
+Saving writes a unique temporary in the same folder and renames it onto the path, so a kill
+mid-write leaves the old file whole. Loading never executes code from the file and checks
+it before believing it; a file that is not ours, is damaged, or whose metadata disagrees
+with its arrays raises a ``ValueError`` that says so.
 """
 
 from __future__ import annotations
 
 import json
 import os
-import zipfile
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ..model._labels import ROOT_NAME, element_labels
+from ._files import atomic_write, check_writable, read_result_file, write_npz
+from ._health import warnings_of
 from ._history import History
 
 if TYPE_CHECKING:  # the module itself does not import JAX until a run's result is built
@@ -34,6 +38,7 @@ if TYPE_CHECKING:  # the module itself does not import JAX until a run's result 
 __all__ = ["Result", "load"]
 
 RESULT_FORMAT = "flowpost-result"
+RESULT_VERSION = 2  # 2: written through a temporary, with a digest member (1 is still read)
 
 
 def _rebuild(names: list[str], arrays: dict[str, np.ndarray], root_array: bool):
@@ -70,6 +75,11 @@ class Result:
         Steps completed (the particles are those after this many steps).
     report : dict
         The stepper's own figures (e.g. a tuned step size).
+    warnings : list of str
+        What makes the answer doubtful although the run ended normally (a stuck or collapsed
+        ensemble, all proposals rejected, lost float resolution, a step bias after halving, a
+        constant score): the ``"warning"`` events of the history (:mod:`flowpost.engine`
+        (health)). ``reason`` says how many there are and ``summary()`` lists them.
     """
 
     def __init__(
@@ -98,6 +108,8 @@ class Result:
         self.stepper = stepper
         self.report = {k: (float(v) if np.ndim(v) == 0 else np.asarray(v)) for k, v in (report or {}).items()}
         self.events = list(events or [])
+        if _loaded is None and self.warnings:
+            self.reason = f"{reason}; {len(self.warnings)} warning(s): see Result.warnings"
         if _loaded is not None:
             self._names = _loaded["names"]
             self._shapes = _loaded["shapes"]
@@ -142,6 +154,11 @@ class Result:
         return int(self.unconstrained.shape[0])
 
     @property
+    def warnings(self) -> list[str]:
+        """The run's recorded findings in words (the history's ``"warning"`` events)."""
+        return warnings_of(self.history)
+
+    @property
     def ok(self) -> bool:
         """False after a blow-up or an interrupt."""
         return self.status in ("done", "stopped")
@@ -161,6 +178,7 @@ class Result:
         the ensemble mean, standard deviation and a central ``level`` interval (equal-tailed
         quantiles), followed by how the run ended."""
         names, mat = self.draws()
+        mat = np.asarray(mat, dtype=np.float64)  # a float32 ensemble summarised in float32 loses digits
         lo_q, hi_q = (1 - level) / 2, 1 - (1 - level) / 2
         lo_lab, hi_lab = f"{100 * lo_q:g}%", f"{100 * hi_q:g}%"
         width = max(12, max(len(n) for n in names) + 2)
@@ -179,6 +197,7 @@ class Result:
             lines.append(f"{n:<{width}}{mean[i]:>12.5g}{sd[i]:>12.5g}{lo[i]:>12.5g}{hi[i]:>12.5g}")
         lines.append("-" * len(head))
         lines.append(f"status: {self.status} ({self.reason})")
+        lines.extend(f"warning: {w}" for w in self.warnings)
         for k, v in self.report.items():
             lines.append(f"{k}: {v:.5g}" if np.ndim(v) == 0 else f"{k}: {v}")
         return "\n".join(lines)
@@ -191,14 +210,46 @@ class Result:
         return run_figure(self, params=params, pair=pair)
 
     def __repr__(self):
-        return f"<flowpost Result: {self.n_particles} particles, {self.steps} steps, status={self.status!r}>"
+        warned = f", warnings={len(self.warnings)}" if self.warnings else ""
+        params = ", ".join(n + (f" {tuple(s)}" if s else "") for n, s in zip(self._names, self._shapes))
+        return (
+            f"<flowpost Result: status={self.status!r}, {self.steps} steps, {self.n_particles} particles, "
+            f"parameters: {params}; elapsed {self.elapsed:.3g} s{warned}>"
+        )
+
+    # ----- afterwards: predictive draws and export (flowpost.engine._predictive, _export) -----
+    def predictive(self, fn: Any, key: Any = None, *, block: int = 256) -> Any:
+        """``fn`` mapped over the particles (constrained, the user's pytree): ``fn(params, key)``
+        with one key per particle split from ``key``, or ``fn(params)`` when ``key`` is None;
+        vmapped in blocks of ``block`` particles. Returns ``fn``'s pytree with a leading
+        particle axis: posterior predictive draws (see :mod:`flowpost.engine._predictive`)."""
+        from ._predictive import predictive_draws
+
+        return predictive_draws(self.particles, fn, key, block=block)
+
+    def to_frame(self):
+        """The particles as a ``pandas.DataFrame`` (``export`` extra): one row per particle,
+        one column per scalar element, labelled as in :meth:`summary`; values exact."""
+        from ._export import particles_frame
+
+        return particles_frame(self._names, self._shapes, self._constrained)
+
+    def to_dataset(self):
+        """The particles as an ``xarray.Dataset`` (``export`` extra): one variable per
+        parameter, dimensions ``("particle", "<name>_axis0", ...)``; values exact. Write it
+        with xarray's ``to_netcdf``."""
+        from ._export import particles_dataset
+
+        attrs = {"status": self.status, "reason": self.reason, "steps": self.steps, "elapsed": self.elapsed}
+        attrs["stepper"] = self.stepper_description
+        return particles_dataset(self._names, self._shapes, self._supports, self._constrained, attrs)
 
     # ----- persistence -----------------------------------------------------------------------
     def save(self, path: str | os.PathLike) -> None:
         """Write the result to ``path`` (``.npz`` with JSON metadata; see the module docstring)."""
         meta = {
             "format": RESULT_FORMAT,
-            "version": 1,
+            "version": RESULT_VERSION,
             "names": self._names,
             "shapes": self._shapes,
             "supports": self._supports,
@@ -212,28 +263,19 @@ class Result:
             "events": self.events,
             "history": self.history.to_json(),
         }
-        # Any: numpy's stub would match the unpacked arrays against savez's allow_pickle: bool
-        arrays: dict[str, Any] = {f"p:{n}": self._constrained[n] for n in self._names}
-        with open(path, "wb") as fh:
-            np.savez(fh, meta=np.array(json.dumps(meta)), u=self.unconstrained, **arrays)
+        arrays: dict[str, Any] = {"meta": json.dumps(meta), "u": self.unconstrained}
+        arrays.update({f"p:{n}": self._constrained[n] for n in self._names})
+        # a unique temporary in the same folder, renamed onto path: a kill mid-write leaves the old file
+        atomic_write(check_writable(path, "path"), lambda fh: write_npz(fh, arrays))
 
 
 def load(path: str | os.PathLike) -> Result:
-    """Read a result written by :meth:`Result.save`. Never unpickles: a file that is not a
-    flowpost result, or is truncated, raises ``ValueError``."""
-    try:
-        with np.load(path, allow_pickle=False) as f:
-            if "meta" not in f.files:
-                raise ValueError("no flowpost metadata")
-            meta = json.loads(str(f["meta"]))
-            if not isinstance(meta, dict) or meta.get("format") != RESULT_FORMAT:
-                raise ValueError("metadata is not a flowpost result")
-            arrays = {n: f[f"p:{n}"] for n in meta["names"]}
-            u = f["u"]
-    except FileNotFoundError:
-        raise
-    except (ValueError, KeyError, OSError, EOFError, zipfile.BadZipFile, json.JSONDecodeError) as err:
-        raise ValueError(f"path: '{path}' is not a readable flowpost result file ({err})") from err
+    """Read a result written by :meth:`Result.save`. Never unpickles, and checks the file
+    before believing it (:class:`flowpost.engine._files.Archive`): a file that is not a
+    flowpost result, is truncated, or whose metadata disagrees with its arrays or its digest
+    raises ``ValueError`` naming the path and what is wrong."""
+    meta = read_result_file(path, RESULT_FORMAT, (1, RESULT_VERSION))
+    arrays, u = meta["arrays"], meta["u"]
     loaded = {
         "names": meta["names"],
         "shapes": meta["shapes"],

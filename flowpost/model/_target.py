@@ -25,8 +25,10 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._validate import callable_value, fail
 from ._labels import ROOT_NAME, coordinate_labels, element_labels, path_label
 from ._support import Real, as_support
+from ._user_code import check_arity, check_data, explain_call_error
 
 __all__ = ["Layout", "Target", "as_target"]
 
@@ -87,24 +89,21 @@ class Layout:
 def _build_layout(init: Any, support: dict[str, Real]) -> tuple[Layout, int]:
     leaves_with_path, treedef = jax.tree_util.tree_flatten_with_path(init)
     if not leaves_with_path:
-        raise ValueError("init: expected a pytree of arrays with a leading particle axis; got no arrays")
+        raise fail("init", "a pytree of arrays with a leading particle axis", init, TypeError)
     n = 0  # the particle count N, read from the first leaf
     slots, start = [], 0
     names = []
     for path, leaf in leaves_with_path:
         name = path_label(path)
-        arr = np.asarray(leaf) if not isinstance(leaf, jax.Array) else leaf
-        if arr.ndim < 1:
-            raise ValueError(
-                f"init: parameter '{name}' has no leading particle axis (shape {tuple(arr.shape)}); "
-                "every leaf of init must have shape (N, ...)"
-            )
+        arr = _init_leaf(name, leaf, init)
         if not names:
             n = arr.shape[0]
+            if n < 1:
+                raise ValueError(f"init: expected at least one particle (a leading axis N >= 1); got N=0 for '{name}'")
         elif arr.shape[0] != n:
             raise ValueError(
-                f"init: every leaf must share the leading particle axis N; '{names[0]}' has N={n} "
-                f"but '{name}' has {arr.shape[0]}"
+                f"init: expected every leaf to share the leading particle axis N; got N={n} for "
+                f"'{names[0]}' and N={arr.shape[0]} for '{name}'"
             )
         names.append(name)
         shape = tuple(int(s) for s in arr.shape[1:])
@@ -114,8 +113,37 @@ def _build_layout(init: Any, support: dict[str, Real]) -> tuple[Layout, int]:
         start += size
     unknown = set(support) - set(names)
     if unknown:
-        raise ValueError(f"support: {sorted(unknown)} not among the parameters of init ({names})")
+        raise ValueError(f"support: expected names among the parameters of init {names}; got {sorted(unknown)}")
     return Layout(treedef, tuple(slots), start), n
+
+
+def _init_leaf(name: str, leaf: Any, init: Any) -> Any:
+    """One leaf of ``init``, checked: real numbers (float32 / float64, or integers, which take
+    the default float) with a leading particle axis."""
+    arr = leaf if isinstance(leaf, jax.Array) else np.asarray(leaf)
+    dtype = arr.dtype
+    if not (jnp.issubdtype(dtype, jnp.floating) or jnp.issubdtype(dtype, jnp.integer)) or dtype == np.bool_:
+        raise TypeError(f"init: expected real-valued particles; got dtype {dtype} for '{name}'")
+    if jnp.issubdtype(dtype, jnp.floating) and dtype.itemsize < 4:
+        raise TypeError(
+            f"init: expected float32 or float64 particles (16-bit floats cannot resolve the steps of "
+            f"a flow); got dtype {dtype} for '{name}' (cast with .astype(jnp.float32))"
+        )
+    if arr.ndim < 1:
+        hint = (
+            " (a Python list or tuple is a pytree of its items: pass one array, jnp.asarray(init))"
+            if isinstance(init, (list, tuple))
+            else ""
+        )
+        raise ValueError(
+            "init: expected every leaf to have a leading particle axis, shape (N, ...); got "
+            f"'{name}' of shape {tuple(arr.shape)}{hint}"
+        )
+    return arr
+
+
+class _NotAnArray(Exception):
+    """Raised while tracing when ``log_p`` returns something that is not a number or an array."""
 
 
 class Target:
@@ -154,16 +182,20 @@ class Target:
     ):
         if isinstance(log_p, Mapping):
             if not log_p:
-                raise ValueError("log_p: a mapping of named terms must not be empty")
+                raise fail("log_p", "a callable or a non-empty mapping {name: callable}", dict(log_p))
             for k, f in log_p.items():
-                if not callable(f):
-                    raise TypeError(f"log_p: term '{k}' must be callable; got {type(f).__name__}")
+                if not isinstance(k, str):
+                    raise fail("log_p", "term names that are strings", k, TypeError)
+                callable_value(f"log_p['{k}']", f, "a callable log-density term")
             self._terms = tuple(log_p.items())
-        elif callable(log_p):
+        elif callable(log_p) and not isinstance(log_p, type):
             self._terms = (("total", log_p),)
         else:
-            raise TypeError(f"log_p: expected a callable or a mapping of callables; got {type(log_p).__name__}")
+            raise fail("log_p", "a callable or a mapping of callables", log_p, TypeError)
         self._named = isinstance(log_p, Mapping)
+        for k, f in self._terms:
+            check_arity("log_p" if not self._named else f"log_p['{k}']", f, data is not None)
+        check_data(data)
         self.data = data
         if support is None:
             sup = {}
@@ -221,8 +253,9 @@ class Target:
             bad = ~inside.reshape(n, -1).all(axis=1)
             if bad.any():
                 raise ValueError(
-                    f"init: {int(bad.sum())} of {n} particles have '{s.name}' outside its support "
-                    f"({s.support.describe()}) or non-finite"
+                    f"init: expected particles inside the support of '{s.name}' ({s.support.describe()}); "
+                    f"got {int(bad.sum())} of {n} particles with '{s.name}' outside it or non-finite "
+                    f"(first bad particle index {int(np.argmax(bad))})"
                 )
         cast = jax.tree_util.tree_unflatten(layout.treedef, [jnp.asarray(l, dtype) for l in leaves])
         x = jax.vmap(layout.flatten)(cast)
@@ -237,28 +270,28 @@ class Target:
 
             def one(u, f=f):
                 theta, _ = layout.unflatten(u)
-                return self._call(f, theta)
+                out = self._call(f, theta)
+                if not isinstance(out, (jax.Array, np.ndarray, np.generic, float, int)) or isinstance(out, bool):
+                    raise _NotAnArray(out)
+                return out
 
             try:
                 out = jax.eval_shape(one, u0)
+            except _NotAnArray as err:
+                raise fail(label, "a floating-point scalar (a JAX array of shape ())", err.args[0], TypeError) from None
             except Exception as err:  # user code failed on a particle of the init structure
-                raise ValueError(
-                    f"init does not match what {label} reads: calling it on one particle with "
-                    f"parameters {shapes} raised {type(err).__name__}: {err}"
-                ) from err
+                raise explain_call_error(label, err, shapes, self.data, "init", "one particle of init") from err
             if getattr(out, "shape", None) != ():
-                raise ValueError(
-                    f"{label} must return a scalar log-density; it returned shape "
-                    f"{getattr(out, 'shape', type(out).__name__)}"
-                )
+                raise ValueError(f"{label}: expected a scalar log-density (shape ()); got shape {tuple(out.shape)}")
             if not jnp.issubdtype(out.dtype, jnp.floating):
-                raise TypeError(f"{label} must return a floating-point scalar; it returned dtype {out.dtype}")
+                raise TypeError(f"{label}: expected a floating-point scalar log-density; got dtype {out.dtype}")
             try:
                 jax.eval_shape(jax.grad(one), u0)
             except Exception as err:
                 raise TypeError(
-                    f"{label} cannot be differentiated by JAX (write it with jax.numpy, without "
-                    f"numpy conversions or Python control flow on values): {type(err).__name__}: {err}"
+                    f"{label}: expected a log-density JAX can differentiate (written with jax.numpy, "
+                    f"without numpy conversions or Python control flow on values); got "
+                    f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"
                 ) from err
 
     # ----- log-density on one particle ------------------------------------------------------
@@ -268,7 +301,10 @@ class Target:
     def bound_layout(self) -> Layout:
         """The layout of a bound target; refuses an unbound one."""
         if self.layout is None:
-            raise ValueError("target: this Target is not bound to a parameter layout; call target.bind(init)")
+            raise ValueError(
+                "target: expected a Target bound to a parameter layout (target.bind(init) returns one); "
+                "got an unbound Target"
+            )
         return self.layout
 
     @property
@@ -284,6 +320,11 @@ class Target:
         if self._named and self._constrained():
             names = (*names, "jacobian")
         return names
+
+    @property
+    def term_functions(self) -> tuple[tuple[str, Callable[..., Any]], ...]:
+        """The user's log-density callables by term name (``(("total", log_p),)`` for one)."""
+        return tuple(self._terms)
 
     def _constrained(self) -> bool:
         return any(type(s.support) is not Real for s in self.bound_layout().slots)
@@ -351,6 +392,6 @@ def as_target(obj: Any) -> Target:
     """Accept a :class:`Target` or a bare log-density callable."""
     if isinstance(obj, Target):
         return obj
-    if callable(obj) or isinstance(obj, Mapping):
+    if (callable(obj) and not isinstance(obj, type)) or isinstance(obj, Mapping):
         return Target(obj)
-    raise TypeError(f"target: expected a flowpost.Target or a log-density callable; got {type(obj).__name__}")
+    raise fail("target", "a flowpost.Target or a log-density callable", obj, TypeError)

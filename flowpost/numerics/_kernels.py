@@ -78,6 +78,8 @@ DEFAULT_MEDIAN_POINTS: int = 1000
 
 def as_points(name: str, x: ArrayLike) -> Array:
     """Return ``x`` as a floating ``(N, d)`` array or raise a clear error."""
+    if isinstance(x, (str, bytes)):
+        raise TypeError(f"{name}: expected a floating-point array of shape (N, d); got {x!r}")
     x = jnp.asarray(x)
     if not jnp.issubdtype(x.dtype, jnp.inexact):
         raise TypeError(f"{name}: expected a floating-point array of shape (N, d); got dtype {x.dtype}")

@@ -23,15 +23,15 @@ weight never recompiles; their structure (a group layout, a user's callables)
 is static. Closed forms follow "Proximal algorithms" (Foundations and
 Trends in Optimization, 2014), sections 6.1 and 6.5:
 
-====================  ===========================================  ==========================================
-term                  :math:`g(x)`                                 :math:`\operatorname{prox}_{hg}(v)`
-====================  ===========================================  ==========================================
-``L1Penalty``         :math:`\lambda \sum_i |x_i|`                 :math:`\operatorname{sign}(v)\max(|v|-h\lambda, 0)`
-``WeightedL1Penalty`` :math:`\sum_i w_i |x_i|`                     :math:`\operatorname{sign}(v_i)\max(|v_i|-h w_i, 0)`
-``NonNegative``       :math:`\iota\{x \ge 0\}`                     :math:`\max(v, 0)`
-``Box``               :math:`\iota\{l \le x \le u\}`               :math:`\min(\max(v, l), u)`
-``GroupL1Penalty``    :math:`\lambda \sum_G \lVert x_G\rVert_2`    :math:`v_G \max(0, 1 - h\lambda/\lVert v_G\rVert_2)`
-====================  ===========================================  ==========================================
+======================  =========================================  ==========================================
+term                    :math:`g(x)`                               :math:`\operatorname{prox}_{hg}(v)`
+======================  =========================================  ==========================================
+``L1Penalty``           :math:`\lambda \sum_i |x_i|`               :math:`\operatorname{sign}(v)\max(|v|-h\lambda, 0)`
+``WeightedL1Penalty``   :math:`\sum_i w_i |x_i|`                   :math:`\operatorname{sign}(v_i)\max(|v_i|-h w_i, 0)`
+``NonNegative``         :math:`\iota\{x \ge 0\}`                   :math:`\max(v, 0)`
+``Box``                 :math:`\iota\{l \le x \le u\}`             :math:`\min(\max(v, l), u)`
+``GroupL1Penalty``      :math:`\lambda \sum_G \lVert x_G\rVert_2`  :math:`v_G \max(0, 1 - h\lambda/\lVert v_G\rVert_2)`
+======================  =========================================  ==========================================
 
 ``UserProx`` wraps a user-supplied ``prox(v, h)`` (and optionally ``g``) into
 the same interface; ``SmoothProx`` and :func:`prox_by_solver` compute the map

@@ -116,6 +116,7 @@ class BlobFlow(Stepper):
     block: int = static(default=DEFAULT_BLOCK)
 
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
+    needs_spread = "coordinates"  # flowpost.run refuses a start this step cannot leave (base.py)
     reductions: ClassVar[dict[str, str]] = {"bandwidth": "mean", "grad_evals": "sum"}
 
     def __post_init__(self):

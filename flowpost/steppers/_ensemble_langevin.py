@@ -97,6 +97,7 @@ class EnsembleLangevin(Stepper):
     block: int = static(default=512)
 
     stochastic = True
+    needs_spread = "full_rank"  # flowpost.run refuses a start this step cannot leave (base.py)
     reductions: ClassVar[dict[str, str]] = {"grad_evals": "sum"}
 
     def __post_init__(self):

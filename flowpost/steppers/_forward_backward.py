@@ -227,6 +227,7 @@ class ForwardBackward(Recipe):
     solver: InnerSolver | None = None
 
     stochastic = False
+    needs_spread = "full_rank"  # flowpost.run refuses a start this step cannot leave (base.py)
     reductions = _INNER
 
     def __post_init__(self):

@@ -131,7 +131,7 @@ class ImplicitLangevin(Recipe):
         check_solver("solver", self.solver)
         boolean("precondition", self.precondition)
         if self.prox is not None:
-            callable_value("prox", self.prox, "a callable prox(u, h) -> y for one particle, or None")
+            callable_value("prox", self.prox, "a callable prox(u, h) -> y for one particle, or None", nargs=2)
 
     @property
     def scheme(self) -> Split:

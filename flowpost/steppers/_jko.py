@@ -193,6 +193,7 @@ class JKO(Stepper):
     precondition: bool = static(default=True)
 
     stochastic = False  # deterministic: the monitor skips R-hat and ESS
+    needs_spread = "full_rank"  # flowpost.run refuses a start this step cannot leave (base.py)
     reductions: ClassVar[dict[str, str]] = {
         "grad_evals": "sum",
         "inner_iters": "mean",

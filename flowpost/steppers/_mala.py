@@ -9,9 +9,12 @@ For every particle independently, with ``xi ~ N(0, I)`` and ``s = grad log pi``:
 Written out, ``log q(y | x) = -|y - x - h s(x)|^2 / (4 h) + const`` (the constant cancels in
 the ratio; the code takes both terms from ``jax.scipy.stats.norm.logpdf``). The correction
 makes ``pi`` exactly invariant for every step size ``h``, removing the ``O(h)`` bias of the
-unadjusted chain (:class:`flowpost.Langevin`). A proposal whose log-density or score is not
-finite is rejected. There is no stability limit: a step that is too large only lowers the
-acceptance (the chain then rarely moves), it cannot make the ensemble diverge.
+unadjusted chain (:class:`flowpost.Langevin`). A proposal whose log-density is NaN or
+``-inf``, or whose score is not finite, is rejected. A proposal where ``log pi = +inf`` is
+accepted, as the ratio ``+inf`` says: ``+inf`` is a defect of ``log_p``, and the run's monitor
+then ends the run on it as it does for every stepper (:mod:`flowpost.engine` (monitor)).
+There is no stability limit: a step that is too large only lowers the acceptance (the chain
+then rarely moves), it cannot make the ensemble diverge.
 
 The state keeps ``x``, ``log pi(x)`` and ``s(x)``, so one step costs a single
 value-and-gradient evaluation, at the proposal.
@@ -145,6 +148,8 @@ class MALA(Stepper):
         log_ratio = logp_y - logp + _log_q(x, y, score_y, h) - _log_q(y, x, score, h)
         ok = jnp.isfinite(logp_y) & jnp.all(jnp.isfinite(score_y), axis=-1)
         log_ratio = jnp.where(ok & ~jnp.isnan(log_ratio), log_ratio, -jnp.inf)
+        # log pi(y) = +inf: the ratio is +inf (accepted), and the monitor reports the defect of log_p
+        log_ratio = jnp.where((logp_y == jnp.inf) & jnp.isfinite(logp), jnp.inf, log_ratio)
         log_u = jnp.log(jax.random.uniform(k_unif, logp.shape, dtype))
         accept = log_u < log_ratio
         prob = jnp.exp(jnp.minimum(log_ratio, 0.0))

@@ -243,7 +243,9 @@ class ExactMap(_PositionPart):
     fraction : float
         Share of the step.
 
-    Example: the flow of ``dx/dt = -(x - m)/s2`` (the potential of ``N(m, s2)``) is
+    Examples
+    --------
+    The flow of ``dx/dt = -(x - m)/s2`` (the potential of ``N(m, s2)``) is
     ``ExactMap(lambda x, t: m + jnp.exp(-t / s2) * (x - m))``.
     """
 
@@ -254,7 +256,7 @@ class ExactMap(_PositionPart):
     reductions = _ZERO_STATS
 
     def __post_init__(self):
-        callable_value("ExactMap.fn", self.fn, "a callable fn(x, t) -> x")
+        callable_value("ExactMap.fn", self.fn, "a callable fn(x, t) -> x", nargs=2)
         self._check_fraction()
 
     def advance(
@@ -391,7 +393,7 @@ class Proximal(Part):
     With ``prox`` (a term of :mod:`flowpost.numerics.prox`, closed form) ``G = g``, its penalty;
     the map is ``prox(x, t)``. Without it ``G = -T`` for the term(s) ``term`` and every
     particle's problem is solved by the optax inner solver (``jax.vmap`` over particles),
-    scaled by ``t`` and warm-started at ``y = x``:
+    scaled by ``t`` and warm-started at ``y = x``::
 
         f(u) = t G(x + A u) + |A u|^2 / 2,     y = x + A u,  from u = 0,
 

@@ -117,6 +117,7 @@ class SVGD(Stepper):
     batch: int | None = static(default=None)
 
     stochastic = False  # deterministic (random batches aside): the monitor skips R-hat and ESS
+    needs_spread = "coordinates"  # flowpost.run refuses a start this step cannot leave (base.py)
     reductions: ClassVar[dict[str, str]] = {"kernel_scale": "mean", "grad_evals": "sum"}
 
     def __post_init__(self):

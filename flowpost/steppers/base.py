@@ -46,6 +46,18 @@ Declarations with documented base-class values, read by :class:`~flowpost.steppe
 ``uses_momentum : bool`` (``False``)
     ``True`` for a step that reads or writes the momentum ``state.v``.
 
+Declaration with a documented base-class value, read by :func:`flowpost.run` before the
+first step (:mod:`flowpost.engine` (health)):
+
+``needs_spread : str`` (``"none"``)
+    What the starting ensemble must have for the step to be able to leave it: ``"none"``
+    (noise, or a score that differs between particles, moves them anywhere), ``"coordinates"``
+    (a deterministic interacting flow such as SVGD: particles that coincide in a coordinate
+    stay together there, so every coordinate needs a spread) or ``"full_rank"`` (the step
+    uses the ensemble's covariance, as EnsembleLangevin's noise and JKO's whitening do: it
+    needs ``N > d`` particles whose deviations span ``R^d``, else the ensemble never leaves
+    the affine hull of its start). A start that violates it is refused with a clear error.
+
 Parts of a composition are steppers of the same protocol. :class:`~flowpost.steppers.Split`
 keeps the tuple of its parts' states with their ``x`` (and ``v``) slots emptied, and before
 each sub-step puts the current positions (and momentum) back: positions and momentum are
@@ -126,6 +138,7 @@ class Stepper:
     reductions: ClassVar[Mapping[str, str]]
     moves_position: ClassVar[bool] = True
     uses_momentum: ClassVar[bool] = False
+    needs_spread: ClassVar[str] = "none"
 
     def start(self, target: Any, x: jax.Array, key: jax.Array) -> Any:  # pragma: no cover - abstract
         raise NotImplementedError

@@ -31,7 +31,7 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.stats
 
-from .._validate import integer
+from .._validate import callable_value, integer, prng_key
 from ..engine._driver import evolve
 from ..model._target import Target
 from ..steppers.base import Stepper, check_stepper
@@ -170,16 +170,16 @@ def calibrate(
     CalibrationReport
     """
     check_stepper(stepper)
-    if not callable(prior_draw):
-        raise TypeError("prior_draw: expected a callable prior_draw(key) -> theta")
-    if not callable(simulate):
-        raise TypeError("simulate: expected a callable simulate(key, theta) -> data")
+    callable_value("log_p", log_p, "a callable log_p(theta, data)", nargs=2)
+    callable_value("prior_draw", prior_draw, "a callable prior_draw(key) -> theta", nargs=1)
+    callable_value("simulate", simulate, "a callable simulate(key, theta) -> data", nargs=2)
+    prng_key("key", key)
     n_datasets = integer("n_datasets", n_datasets, minimum=1)
     steps = integer("steps", steps, minimum=0)
     bins = integer("bins", bins, minimum=2)
     batch = integer("batch", batch, minimum=1)
     if n_datasets < bins:
-        raise ValueError(f"n_datasets: need at least as many datasets as bins ({bins}); got {n_datasets}")
+        raise ValueError(f"n_datasets: expected at least as many datasets as bins ({bins}); got {n_datasets}")
     k_prior, k_data, k_run = jax.random.split(key, 3)
     thetas = jax.vmap(prior_draw)(jax.random.split(k_prior, n_datasets))
     datas = jax.vmap(simulate)(jax.random.split(k_data, n_datasets), thetas)
@@ -189,8 +189,8 @@ def calibrate(
     n_draws = int(x0.shape[0])
     if (n_draws + 1) % bins:
         raise ValueError(
-            f"init: the number of particles L = {n_draws} must make L + 1 divisible by "
-            f"bins = {bins} (e.g. L = {bins * max(1, (n_draws + 1) // bins) - 1})"
+            f"init: expected a number of particles L with L + 1 divisible by bins = {bins} "
+            f"(e.g. L = {bins * max(1, (n_draws + 1) // bins) - 1}); got L = {n_draws}"
         )
     layout = bound.bound_layout()
     true_mat = jax.vmap(lambda th: jnp.concatenate([jnp.reshape(l, (-1,)) for l in layout.treedef.flatten_up_to(th)]))(

@@ -74,6 +74,7 @@ from jax.flatten_util import ravel_pytree
 
 from .._validate import boolean, callable_value, fail, integer, non_negative, positive
 from ..model._labels import element_label, path_label
+from ..model._user_code import check_arity, check_data, explain_call_error
 from .region import Region, default_key
 
 if TYPE_CHECKING:  # pragma: no cover - hypothesis is a test dependency
@@ -212,6 +213,12 @@ class ScoreAgreement:
         Worst error of each coordinate label over all points.
     step : float
         The relative finite-difference step used.
+    flatness : str
+        Empty, or what is wrong with a score that is identically zero, or the same non-zero
+        vector, at every point while the points differ (finite differences agree with it, so
+        the error above cannot see it: a ``jnp.round`` or integer cast inside ``log_p``;
+        :func:`flowpost.diagnostics.score_flatness`). :func:`assert_score_matches` fails on
+        it. (One flat coordinate alone is not flagged: it can be a redundant coordinate.)
     """
 
     worst_error: float
@@ -225,6 +232,7 @@ class ScoreAgreement:
     point_errors: np.ndarray
     coordinate_errors: dict
     step: float
+    flatness: str = ""
 
     @property
     def num_points(self) -> int:
@@ -324,6 +332,8 @@ def score_agreement(
     ScoreAgreement
     """
     callable_value("log_p", log_p)
+    check_arity("log_p", log_p, data is not None)
+    check_data(data)
     region = Region.from_keywords(where, region=region, caller="score_agreement")
     step = positive("step", step)
     atol = None if atol is None else positive("atol", atol)
@@ -338,19 +348,27 @@ def score_agreement(
             raise fail("theta", "points with at least one coordinate", points[0])
         coords = coordinates(first)
         data64 = _cast64_data(data)
-        out0 = jax.eval_shape(lambda t: _call(log_p, t, data64), first)
+        try:
+            out0 = jax.eval_shape(lambda t: _call(log_p, t, data64), first)
+        except Exception as err:  # the user's log_p failed: say so, naming the argument at fault
+            shapes = jax.tree_util.tree_map(np.shape, first)
+            raise explain_call_error("log_p", err, shapes, data, "region", "the region's first point") from err
         if np.shape(out0) != ():
             raise ValueError(f"log_p: expected a scalar return value (shape ()); got shape {np.shape(out0)}")
         evaluate = _score_evaluator(log_p, data64, unravel, dim, float(step), compiled)
         all_err, all_ad, all_fd = [], [], []
+        values = []
+        flat_points = []
         for p in points:
             x, _ = ravel_pytree(_cast64_theta(p))
+            flat_points.append(np.asarray(x, dtype=np.float64))
             if x.shape != flat0.shape:
                 raise ValueError(
                     f"sampler: expected points of one structure and shape ({dim} coordinates, "
                     f"as the first); got {x.shape[0]} coordinates"
                 )
             value, g_ad, g_fd = (np.asarray(v, dtype=np.float64) for v in evaluate(x))
+            values.append(float(value))
             floor = (
                 (1e-6 * max(1.0, abs(float(value))) if np.isfinite(value) else 1e-6) if atol is None else float(atol)
             )
@@ -362,6 +380,8 @@ def score_agreement(
             all_ad.append(g_ad)
             all_fd.append(g_fd)
 
+    _score_needs_finite(values, points)
+    flatness = _flatness_message(flat_points, values, all_ad, coords)
     errors = np.stack(all_err)  # (num_points, dim)
     flat_worst = int(np.argmax(errors))
     p_idx, c_idx = divmod(flat_worst, dim)
@@ -379,7 +399,54 @@ def score_agreement(
         point_errors=errors.max(axis=1),
         coordinate_errors={co.label: float(e) for co, e in zip(coords, per_coord)},
         step=float(step),
+        flatness=flatness,
     )
+
+
+def _flatness_message(points: list, values: list, scores: list, coords: list) -> str:
+    """What :func:`flowpost.diagnostics.score_flatness` finds, in words ("" for nothing)."""
+    from ..diagnostics import score_flatness
+
+    if len(points) < 2 or any(p.shape != points[0].shape for p in points):
+        return ""
+    flat = score_flatness(np.stack(points), np.asarray(values), np.stack(scores))
+
+    def labels(idx):
+        return ", ".join(coords[k].label for k in idx[:6]) + (f" and {len(idx) - 6} more" if len(idx) > 6 else "")
+
+    lo, hi = flat.value_range
+    if flat.identically_zero:
+        return (
+            f"the autodiff score is exactly 0 in every coordinate at all {flat.points} points, which differ "
+            f"in {labels(flat.zero)} (log_p ranges over [{lo:.6g}, {hi:.6g}]): a jnp.round, jnp.floor, integer cast "
+            "or comparison inside log_p has zero gradient (so have finite differences across its flat "
+            "pieces), and so has a parameter log_p does not read"
+        )
+    if flat.identically_constant:
+        return (
+            f"the autodiff score is the same non-zero vector at all {flat.points} points, which differ "
+            f"in {labels(flat.constant)}: log_p is linear across the region "
+            "(improper unless bounded; check for a rounding or a cast inside log_p)"
+        )
+    return ""
+
+
+def _score_needs_finite(values: list[float], points: list) -> None:
+    """A score is compared only where ``log_p`` is finite: say so, not "score mismatch"."""
+    v = np.asarray(values)
+    bad = ~np.isfinite(v)
+    if bad.any():
+        i = int(np.argmax(bad))
+        kinds = ", ".join(
+            f"{name} at {int(n)}"
+            for name, n in (("NaN", np.isnan(v).sum()), ("+inf", (v == np.inf).sum()), ("-inf", (v == -np.inf).sum()))
+            if n
+        )
+        raise AssertionError(
+            f"log_p: expected a finite value at every point of the region (the score is compared with "
+            f"finite differences only where log_p is finite); got non-finite log_p at {int(bad.sum())} of "
+            f"{len(v)} points ({kinds}); first: point #{i} {_short(points[i])} gives {v[i]}"
+        )
 
 
 def assert_score_matches(
@@ -409,6 +476,8 @@ def assert_score_matches(
     region = Region.from_keywords(where, region=region, caller="assert_score_matches")
     tolerance = positive("tolerance", tolerance)
     report = score_agreement(log_p, region, data=data, step=step, atol=atol, compiled=compiled)
+    if report.flatness:
+        raise AssertionError(f"log_p: expected a score that varies over the region; got {report.flatness}")
     if not report.worst_error <= tolerance:
         raise AssertionError(
             f"score of log_p disagrees with finite differences: parameter "
@@ -663,6 +732,8 @@ def check_health(
     message; the report never raises, call ``report.assert_passed()`` for that.
     """
     callable_value("log_p", log_p)
+    check_arity("log_p", log_p, data is not None)
+    check_data(data)
     region = Region.from_keywords(where, region=region, caller="check_health")
     exchangeable = boolean("exchangeable", exchangeable)
     if exchangeable and data is None:

@@ -35,6 +35,7 @@ from typing import Any
 import jax
 import numpy as np
 
+from .._validate import choice, fail, positive
 from .checks import coordinates
 
 __all__ = ["MomentZScores", "assert_moments_match", "moment_zscores"]
@@ -74,9 +75,20 @@ class MomentZScores:
         return worst
 
 
+def _as_floats(name: str, value: Any) -> np.ndarray:
+    """``value`` as a float64 array, or a clear error (a string, an object, a complex number)."""
+    try:
+        arr = np.asarray(value)
+    except Exception as err:  # ragged nesting
+        raise fail(name, "real numbers (an array or a pytree of arrays)", value, TypeError) from err
+    if not (np.issubdtype(arr.dtype, np.floating) or np.issubdtype(arr.dtype, np.integer)):
+        raise TypeError(f"{name}: expected real numbers (an array or a pytree of arrays); got dtype {arr.dtype}")
+    return arr.astype(np.float64)
+
+
 def _flatten_draws(draws) -> tuple[np.ndarray, list[str]]:
     if isinstance(draws, (np.ndarray, jax.Array)) or np.isscalar(draws):
-        arr = np.asarray(draws, dtype=np.float64)
+        arr = _as_floats("draws", draws)
         if arr.ndim == 1:
             arr = arr[:, None]
         if arr.ndim != 2:
@@ -91,13 +103,13 @@ def _flatten_draws(draws) -> tuple[np.ndarray, list[str]]:
     n = None
     cols = []
     for leaf in leaves:
-        a = np.asarray(leaf, dtype=np.float64)
+        a = _as_floats("draws", leaf)
         if a.ndim < 1:
-            raise ValueError("draws: every leaf needs a leading particle axis N; got a scalar leaf")
+            raise ValueError("draws: expected every leaf to have a leading particle axis N; got a scalar leaf")
         if n is None:
             n = a.shape[0]
         elif a.shape[0] != n:
-            raise ValueError(f"draws: every leaf must share the leading axis N; got {n} and {a.shape[0]}")
+            raise ValueError(f"draws: expected every leaf to share the leading axis N; got {n} and {a.shape[0]}")
         cols.append(a.reshape(n, -1))
     labels = [c.label for c in coordinates(draws, leading=1)]
     return np.concatenate(cols, axis=1), labels
@@ -105,10 +117,10 @@ def _flatten_draws(draws) -> tuple[np.ndarray, list[str]]:
 
 def _flatten_reference(ref, d: int, name: str) -> np.ndarray:
     if isinstance(ref, (np.ndarray, jax.Array, list, tuple, float, int)) or np.isscalar(ref):
-        arr = np.asarray(ref, dtype=np.float64).reshape(-1)
+        arr = _as_floats(name, ref).reshape(-1)
     else:
         leaves = jax.tree_util.tree_leaves(ref)
-        arr = np.concatenate([np.asarray(x, dtype=np.float64).reshape(-1) for x in leaves]) if leaves else np.zeros(0)
+        arr = np.concatenate([_as_floats(name, x).reshape(-1) for x in leaves]) if leaves else np.zeros(0)
     if arr.shape != (d,):
         raise ValueError(f"{name}: expected {d} values (one per coordinate of draws); got {arr.size}")
     return arr
@@ -144,19 +156,18 @@ def moment_zscores(
     x, labels = _flatten_draws(draws)
     n, d = x.shape
     if n < 2:
-        raise ValueError(f"draws: need at least 2 particles; got N={n}")
+        raise ValueError(f"draws: expected at least 2 particles; got N={n}")
     if names is not None:
         if len(names) != d:
             raise ValueError(f"names: expected {d} labels; got {len(names)}")
         labels = [str(s) for s in names]
-    if variance_error not in ("empirical", "gaussian"):
-        raise ValueError(f"variance_error: expected 'empirical' or 'gaussian'; got {variance_error!r}")
+    choice("variance_error", variance_error, ("empirical", "gaussian"))
     mu = _flatten_reference(mean, d, "mean")
     if n_eff is None:
         ne = np.full(d, float(n))
     else:
         ne = (
-            np.broadcast_to(np.asarray(n_eff, dtype=np.float64), (d,)).copy()
+            np.broadcast_to(_as_floats("n_eff", n_eff), (d,)).copy()
             if np.ndim(n_eff) in (0, 1) and np.size(n_eff) in (1, d)
             else None
         )
@@ -164,7 +175,7 @@ def moment_zscores(
             raise ValueError(f"n_eff: expected a positive number or {d} positive numbers; got {n_eff!r}")
     if not np.all(np.isfinite(x)):
         bad = [labels[k] for k in range(d) if not np.all(np.isfinite(x[:, k]))]
-        raise ValueError(f"draws: non-finite values in {', '.join(bad)}")
+        raise ValueError(f"draws: expected finite values; got non-finite values in {', '.join(bad)}")
 
     xbar = x.mean(axis=0)
     dx = x - xbar
@@ -176,7 +187,7 @@ def moment_zscores(
 
     cov_z = cov_se = None
     if cov is not None:
-        S = np.asarray(cov, dtype=np.float64)
+        S = _as_floats("cov", cov)
         if S.shape != (d, d):
             raise ValueError(f"cov: expected shape ({d}, {d}); got {S.shape}")
         ne_pair = np.minimum(ne[:, None], ne[None, :])
@@ -210,8 +221,7 @@ def assert_moments_match(
     ``covariance of (w[0], w[1])``), its ensemble and reference values, its standard error
     and the number of standard errors, worst first. Arguments as in :func:`moment_zscores`.
     """
-    if not float(threshold) > 0:
-        raise ValueError(f"threshold: expected a positive number; got {threshold!r}")
+    threshold = positive("threshold", threshold)
     z = moment_zscores(draws, mean, cov, n_eff=n_eff, variance_error=variance_error, names=names)
     mu = _flatten_reference(mean, len(z.labels), "mean")
     problems = []

@@ -142,12 +142,20 @@ class Region:
                 f"Region.drawn(sampler)); got {got}"
             )
         if self.sampler is not None:
-            callable_value("sampler", self.sampler, "a callable key -> pytree")
+            callable_value("sampler", self.sampler, "a callable key -> pytree", nargs=1)
         else:
             import jax
 
-            if not jax.tree_util.tree_leaves(self.around):
+            leaves = jax.tree_util.tree_leaves(self.around)
+            if not leaves:
                 raise fail("around", "a pytree with at least one array leaf", self.around)
+            for leaf in leaves:
+                try:
+                    kind = np.asarray(leaf).dtype
+                except Exception:  # not convertible to an array at all
+                    kind = np.dtype(object)
+                if not (np.issubdtype(kind, np.floating) or np.issubdtype(kind, np.integer) or kind == np.bool_):
+                    raise fail("around", "a pytree of real numbers (float or integer arrays)", leaf, TypeError)
         object.__setattr__(self, "scale", non_negative("scale", self.scale))
         if self.num_points is not None:
             object.__setattr__(self, "num_points", integer("num_points", self.num_points, minimum=1))
