@@ -19,7 +19,9 @@ import numpy as np
 
 __all__ = ["ROOT_NAME", "coordinate_labels", "element_label", "element_labels", "path_label"]
 
-ROOT_NAME = "theta"  # the name of a parameter given as one plain array
+#: The name given to the parameter when ``init`` is one plain array, not a pytree (its
+#: elements are then labelled ``theta[0]``, ``theta[1]``, ...).
+ROOT_NAME = "theta"
 
 
 def path_label(path: Iterable[Any]) -> str:
