@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import os
 import sys
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -92,8 +93,23 @@ def main(argv: list[str] | None = None) -> int:
     return 0 if result.ok else 1
 
 
+def draw_fit(ax: Any, particles: dict[str, Any], t: np.ndarray, temp: np.ndarray) -> None:
+    """Draw the fitted cooling curves on a matplotlib ``ax``: the 90 % band and the median of
+    ``room + (T0 - room) exp(-k t)`` across the particles, and the kiln log's readings."""
+    grid = np.linspace(0, float(t[-1]), 200)
+    room, k = np.asarray(particles["room"])[:, None], np.asarray(particles["k"])[:, None]
+    curves = room + (T0 - room) * np.exp(-k * grid)
+    lo, mid, hi = np.quantile(curves, [0.05, 0.5, 0.95], axis=0)
+    ax.fill_between(grid, lo, hi, alpha=0.3, label="90% band of the fitted curve")
+    ax.plot(grid, mid, label="posterior median curve")
+    ax.scatter(t, temp, s=10, color="k", label="kiln log")
+    ax.set_xlabel("hours since switch-off")
+    ax.set_ylabel("temperature (C)")
+    ax.legend()
+
+
 def _plot(result, t, temp, path):
-    from .engine._files import atomic_write
+    from .engine import atomic_write
 
     try:
         import matplotlib
@@ -103,19 +119,8 @@ def _plot(result, t, temp, path):
     except ImportError:
         print("(matplotlib not installed: no plot; pip install 'flowpost[plot]')")
         return
-    p = result.particles
-    grid = np.linspace(0, t[-1], 200)
-    curves = np.asarray(p["room"])[:, None] + (T0 - np.asarray(p["room"])[:, None]) * np.exp(
-        -np.asarray(p["k"])[:, None] * grid
-    )
-    lo, mid, hi = np.quantile(curves, [0.05, 0.5, 0.95], axis=0)
     fig, ax = plt.subplots(figsize=(6, 4))
-    ax.fill_between(grid, lo, hi, alpha=0.3, label="90% band of the fitted curve")
-    ax.plot(grid, mid, label="posterior median curve")
-    ax.scatter(t, temp, s=10, color="k", label="kiln log")
-    ax.set_xlabel("hours since switch-off")
-    ax.set_ylabel("temperature (C)")
-    ax.legend()
+    draw_fit(ax, result.particles, t, temp)
     fig.tight_layout()
     kind = os.path.splitext(path)[1].lstrip(".").lower() or "png"
     atomic_write(path, lambda fh: fig.savefig(fh, format=kind, dpi=100))  # a temporary, renamed

@@ -12,6 +12,7 @@ from ._controllers import Schedule as Schedule
 from ._controllers import as_controller as as_controller
 from ._driver import evolve as evolve
 from ._driver import run as run
+from ._files import atomic_write as atomic_write
 from ._history import History as History
 from ._monitor import BareMonitor as BareMonitor
 from ._monitor import Monitor as Monitor
@@ -32,6 +33,7 @@ __all__ = [
     "Schedule",
     "Verdict",
     "as_controller",
+    "atomic_write",
     "evolve",
     "fingerprint",
     "load",

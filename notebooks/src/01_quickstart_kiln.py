@@ -23,7 +23,7 @@ import numpy as np
 from IPython.display import Image, display
 
 import flowpost as fp
-from flowpost.demo import T0, TRUE, cooling_log_p, kiln_log
+from flowpost.demo import TRUE, cooling_log_p, draw_fit, kiln_log
 
 
 def show(fig):
@@ -91,18 +91,8 @@ print(result.history.table(["step", "mean_logp", "centre_drift", "spread_drift",
 # Every particle is one plausible cooling curve; the band is the 90 % range across them.
 
 # %%
-p = result.particles
-grid = np.linspace(0, float(t[-1]), 200)
-room, k = np.asarray(p["room"])[:, None], np.asarray(p["k"])[:, None]
-curves = room + (T0 - room) * np.exp(-k * grid)
-lo, mid, hi = np.quantile(curves, [0.05, 0.5, 0.95], axis=0)
 fig, ax = plt.subplots(figsize=(6, 3.5))
-ax.fill_between(grid, lo, hi, alpha=0.3, label="90% band of the fitted curve")
-ax.plot(grid, mid, label="posterior median curve")
-ax.scatter(t, temp, s=10, color="k", label="kiln log")
-ax.set_xlabel("hours since switch-off")
-ax.set_ylabel("temperature (°C)")
-ax.legend()
+draw_fit(ax, result.particles, t, temp)  # flowpost.demo draws the band, the median and the log
 show(fig)
 
 # %% [markdown]
