@@ -19,6 +19,7 @@ from __future__ import annotations
 import copy
 import time
 from collections.abc import Callable, Sequence
+from functools import partial
 from typing import Any, NamedTuple
 
 import jax
@@ -110,20 +111,19 @@ def _one_key(key: jax.Array) -> bool:
     return key.ndim == (0 if typed else 1)
 
 
-@jax.jit
-def _controller_starts(controllers, dtype_of):
-    return jax.vmap(lambda ctrl: ctrl.start(dtype_of.dtype))(controllers)
+@partial(jax.jit, static_argnames=("dtype",))
+def _controller_starts(controllers, dtype):
+    return jax.vmap(lambda ctrl: ctrl.start(dtype))(controllers)
 
 
-def _shared_start(stepper, controller, controllers, target, x, key) -> Carry:
+def _shared_start(stepper, controller, controllers, target, x, key, m: int) -> Carry:
     """The members' starting carry when they share one key: the stepper's start computed once
     (by the run's own compiled start, so a member starts exactly as ``fp.run`` does) and
     broadcast, each controller's own start state beside it. Cheaper to compile than the
     ``vmap``-ped start over the members, which would compute the same state ``M`` times."""
     one = start_carry(stepper, controller, target, x, key)
-    m = jax.tree_util.tree_leaves(controllers)[0].shape[0] if jax.tree_util.tree_leaves(controllers) else 1
     state = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, (m, *a.shape)), one.state)
-    cstate = _controller_starts(controllers, jnp.zeros((), x.dtype))
+    cstate = _controller_starts(controllers, jnp.dtype(x.dtype))
     return Carry(state, cstate, jnp.zeros((m,), x.dtype))
 
 
@@ -214,7 +214,7 @@ def sweep(
     monitors = [copy.deepcopy(template) for _ in range(m)]
 
     if _one_key(key):  # common random numbers: every member starts from the same state
-        carry = _shared_start(stepper, controllers[0], stacked, bound, x0, key)
+        carry = _shared_start(stepper, controllers[0], stacked, bound, x0, key, m)
     else:
         carry = _batch_start(stepper, stacked, bound, x0, keys)
     reductions = check_step_contract(stepper, controllers[0], bound, _member(carry, 0), keys[0])
