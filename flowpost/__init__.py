@@ -55,8 +55,10 @@ if TYPE_CHECKING:  # pragma: no cover - for editors and type checkers
     from .engine import run as run
     from .engine import sweep as sweep
     from .model import Interval as Interval
+    from .model import ItemSum as ItemSum
     from .model import Positive as Positive
     from .model import Real as Real
+    from .model import RowFile as RowFile
     from .model import Simplex as Simplex
     from .model import Target as Target
     from .numerics import IMQ as IMQ
@@ -65,6 +67,8 @@ if TYPE_CHECKING:  # pragma: no cover - for editors and type checkers
     from .numerics import prox as prox
     from .steppers import JKO as JKO
     from .steppers import MALA as MALA
+    from .steppers import SGHMC as SGHMC
+    from .steppers import SGLD as SGLD
     from .steppers import SVGD as SVGD
     from .steppers import BlobFlow as BlobFlow
     from .steppers import Drift as Drift
@@ -111,7 +115,7 @@ _WHERE = {
             "Schedule",
         )
     },
-    **{n: "model" for n in ("Target", "Real", "Positive", "Interval", "Simplex")},
+    **{n: "model" for n in ("Target", "Real", "Positive", "Interval", "Simplex", "ItemSum", "RowFile")},
     **{n: "numerics" for n in ("InnerSolver", "RBF", "IMQ", "prox")},
     **{
         n: "steppers"
@@ -121,6 +125,8 @@ _WHERE = {
             "ScoredState",
             "Langevin",
             "MALA",
+            "SGLD",
+            "SGHMC",
             "SVGD",
             "BlobFlow",
             "EnsembleLangevin",
@@ -155,6 +161,8 @@ __all__ = [
     "JKO",
     "MALA",
     "RBF",
+    "SGHMC",
+    "SGLD",
     "SVGD",
     "AcceptanceTarget",
     "BareMonitor",
@@ -174,6 +182,7 @@ __all__ = [
     "ImplicitLangevin",
     "InnerSolver",
     "Interval",
+    "ItemSum",
     "KernelEntropy",
     "Kick",
     "KineticLangevin",
@@ -187,6 +196,7 @@ __all__ = [
     "ProximalLangevin",
     "Real",
     "Result",
+    "RowFile",
     "Schedule",
     "ScoredState",
     "Simplex",

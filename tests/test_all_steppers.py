@@ -38,6 +38,8 @@ STEPPERS = [
     fp.ForwardBackward(step_size=0.1),
     fp.ProximalLangevin(step_size=0.05, prox=fp.prox.Box(-20.0, 20.0)),
     fp.KineticLangevin(step_size=0.2, friction=1.0),
+    fp.SGLD(step_size=0.05),
+    fp.SGHMC(step_size=0.2, friction=1.0),
     fp.Split((fp.Explicit(), fp.HeatFlow()), step_size=0.05, order="strang"),
 ]
 
@@ -73,6 +75,8 @@ EXPECTED_STOCHASTIC = {
     "ForwardBackward": False,
     "ProximalLangevin": True,
     "KineticLangevin": True,
+    "SGLD": True,
+    "SGHMC": True,
     "Split": True,
 }
 

@@ -72,6 +72,16 @@ Findings (:mod:`flowpost.engine` (health)): after every window the monitor also 
 stuck ensemble (no particle moved), an acceptance below 1% and collapsed coordinates (spread
 at most ``4 eps |mean|``: all particles equal there, or lost float resolution) and hands them
 to the driver in the verdict's ``warnings``; they end up in ``Result.warnings``.
+
+Noisy scores (a minibatch target, :class:`~flowpost.ItemSum`): the discrepancy never uses
+the estimates a stepper keeps in its state; it takes **full-data** scores on its subset, at a
+cost of ``m n`` data-item gradients per window (``m = min(discrepancy_points, N)``, ``n``
+the data items: with a million items and ``m = 256``, a quarter of a billion per window,
+often more than the window's steps; lower ``discrepancy_points`` or turn the discrepancy off
+for big data). ``mean_logp`` and the ``+inf`` check use the batch estimate of the
+log-density on one fixed batch of rows (the same rows every window, so the figure is
+comparable between windows; ``N b`` item evaluations). The estimator's variance is the
+stepper's stat ``score_variance``.
 """
 
 from __future__ import annotations
@@ -86,6 +96,7 @@ import numpy as np
 
 from .._validate import boolean, callable_value, fail, integer, non_negative, positive, real
 from ..diagnostics import ThinnedTrail, split_rhat_and_bulk_ess, stein_discrepancy
+from ..model import figure_log_density, uses_minibatches
 from ..model._target import Target
 from ..numerics import whiten
 from ..steppers.base import Stepper
@@ -138,7 +149,7 @@ def _ensemble_figures_body(target, x):
     n_ok = jnp.maximum(jnp.sum(finite), 1)
     centre = jnp.sum(safe, axis=0) / n_ok
     var = jnp.sum(jnp.where(finite[:, None], (safe - centre) ** 2, 0.0), axis=0) / jnp.maximum(n_ok - 1, 1)
-    logp = target.log_density(safe)
+    logp = figure_log_density(target, safe)  # a fixed-batch estimate for minibatch targets
     logp_ok = finite & jnp.isfinite(logp)
     mean_logp = jnp.sum(jnp.where(logp_ok, logp, 0.0)) / jnp.maximum(jnp.sum(logp_ok), 1)
     n_bad = n_bad + jnp.sum(finite & ~jnp.isfinite(logp))
@@ -272,7 +283,7 @@ class Monitor:
         return _measure(
             target,
             state.x,
-            _score_of(state),
+            _score_of(state, target),
             np.int32(step),
             self._subset(state.x.shape[0]),
             self.whitened,
@@ -291,7 +302,7 @@ class Monitor:
         return _measure_batch(
             target,
             states.x,
-            _score_of(states),
+            _score_of(states, target),
             np.asarray(steps, np.int32),
             self._subset(states.x.shape[1]),
             self.whitened,
@@ -504,8 +515,12 @@ _ensemble_figures = jax.jit(_ensemble_figures_body)
 _DISCREPANCY_SALT = 0x5D15C  # the discrepancy's subset at step t is drawn with fold_in(key(salt), t)
 
 
-def _score_of(state):
-    """The score the stepper keeps at ``state.x`` (an optional field of the protocol), or None."""
+def _score_of(state, target):
+    """The score the stepper keeps at ``state.x`` (an optional field of the protocol), or None;
+    None too for a minibatch target, whose kept scores are noisy estimates (the discrepancy
+    then takes full-data scores)."""
+    if uses_minibatches(target):
+        return None
     return state.score if "score" in state._fields else None
 
 

@@ -24,6 +24,9 @@ from ._parts import Part as Part
 from ._parts import Proximal as Proximal
 from ._proximal_langevin import MoreauDrift as MoreauDrift
 from ._proximal_langevin import ProximalLangevin as ProximalLangevin
+from ._sghmc import SGHMC as SGHMC
+from ._sghmc import MomentumState as MomentumState
+from ._sgld import SGLD as SGLD
 from ._solver_defaults import default_solver as default_solver
 from ._split import Recipe as Recipe
 from ._split import Split as Split
@@ -46,6 +49,8 @@ LIBRARY_STEPPERS = (
     "ForwardBackward",
     "ProximalLangevin",
     "KineticLangevin",
+    "SGLD",
+    "SGHMC",
     "Split",
 )
 
@@ -53,6 +58,8 @@ __all__ = [
     "JKO",
     "LIBRARY_STEPPERS",
     "MALA",
+    "SGHMC",
+    "SGLD",
     "SVGD",
     "BlobFlow",
     "Drift",
@@ -68,6 +75,7 @@ __all__ = [
     "Kick",
     "KineticLangevin",
     "Langevin",
+    "MomentumState",
     "MoreauDrift",
     "Part",
     "ParticleState",
