@@ -18,6 +18,11 @@ numbers, arrays and functions the code reads) and its data (structure, and each 
 shape and a hash of its bytes): a checkpoint of another target of the same shape is refused
 (``target.data[0]: ...``, ``target.log_p['total'].code: ...``).
 
+A run sharded over several processes writes one checkpoint per process (its path names the
+process: :func:`~flowpost.engine._sharding.process_path`) holding that process's part of
+each sharded leaf and the replicated leaves whole; the processes resume together, each from
+its own file.
+
 Files are written through a unique temporary in the destination's folder, renamed into place,
 with a digest member (:mod:`flowpost.engine._files`). Loading checks every field's type, each
 member's header against the metadata (before reading it), the digest, and that the step
@@ -41,6 +46,7 @@ import numpy as np
 
 from ._files import DIGEST_MEMBER, Archive, atomic_write, committed_step, history_problem, is_int, is_shape, write_npz
 from ._history import History
+from ._sharding import from_local_part, local_part
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..model._target import Target
@@ -209,7 +215,9 @@ def target_fingerprint(target: Target) -> dict[str, Any]:
 
 
 def _shapes(tree) -> list:
-    return [[str(np.asarray(a).dtype), list(np.shape(a))] for a in jax.tree_util.tree_leaves(tree)]
+    """Each leaf's dtype and the shape of the part this process keeps (the whole leaf unless
+    it is sharded over several processes: :func:`~flowpost.engine._sharding.local_part`)."""
+    return [[str(np.dtype(a.dtype)), list(np.shape(local_part(a)))] for a in jax.tree_util.tree_leaves(tree)]
 
 
 def _key_parts(key):
@@ -242,7 +250,7 @@ def save_checkpoint(
         "n_leaves": len(leaves),
     }
     arrays: dict[str, Any] = {"meta": json.dumps(meta), "key": kdata}
-    arrays.update({f"leaf_{i}": np.asarray(leaf) for i, leaf in enumerate(leaves)})
+    arrays.update({f"leaf_{i}": local_part(leaf) for i, leaf in enumerate(leaves)})  # this process's part
     atomic_write(path, lambda fh: write_npz(fh, arrays))
 
 
@@ -296,6 +304,14 @@ def _read_checkpoint(path: Any) -> tuple[dict[str, Any], list[np.ndarray], np.nd
     return meta, leaves, kdata
 
 
+def _restore(leaf: np.ndarray, like: Any) -> Any:
+    """A leaf read back: this process's part made the global array again when ``like`` is
+    sharded over several processes (per-process checkpoints), else a plain array."""
+    if isinstance(like, jax.Array) and not like.is_fully_addressable:
+        return from_local_part(leaf, like)
+    return jnp.asarray(leaf, dtype=like.dtype)
+
+
 def load_checkpoint(
     path: str | os.PathLike, carry_like: Any, identity: dict[str, Any]
 ) -> tuple[Any, int, jax.Array, History]:
@@ -323,9 +339,7 @@ def load_checkpoint(
             + "; ".join(diffs[:8])
             + (f" (and {len(diffs) - 8} more)" if len(diffs) > 8 else "")
         )
-    carry = jax.tree_util.tree_unflatten(
-        treedef, [jnp.asarray(leaf, dtype=a.dtype) for leaf, a in zip(leaves, like_leaves)]
-    )
+    carry = jax.tree_util.tree_unflatten(treedef, [_restore(leaf, a) for leaf, a in zip(leaves, like_leaves)])
     try:
         key = jax.random.wrap_key_data(jnp.asarray(kdata)) if meta["typed_key"] else jnp.asarray(kdata)
     except (ValueError, TypeError) as err:

@@ -40,6 +40,7 @@ from ._health import Finding, record_findings, score_findings, spread_findings, 
 from ._history import History
 from ._monitor import Monitor
 from ._result import Result
+from ._sharding import as_particle_sharding, host_copy, in_particle_mesh, process_path
 
 __all__ = ["DRIVER_REDUCTIONS", "Carry", "evolve", "resolve_controller", "run"]
 
@@ -244,6 +245,7 @@ def identity_of(stepper, controller, target) -> dict:
     }
 
 
+@in_particle_mesh  # devices=: the run is traced and run inside the mesh of its devices
 def run(
     target: Target | Callable[..., Any],
     stepper: Stepper,
@@ -260,6 +262,7 @@ def run(
     checkpoint_every: int = 10,
     resume: str | os.PathLike | None = None,
     on_blowup: str = "stop",
+    devices: Any = None,
 ) -> Result:
     """Move the ensemble ``init`` towards the target with ``stepper``.
 
@@ -300,6 +303,14 @@ def run(
         with the reason ("stop") or the step is halved and the run goes on ("halve": the
         controller is wrapped in :class:`~flowpost.Halving`, at most 10
         halvings).
+    devices : sequence of jax devices or a 1-D jax.sharding.Mesh, optional
+        Shard the particle axis of the ensemble and of every per-particle state leaf over
+        these devices (``NamedSharding``; data and numbers replicated); ``N`` must be a
+        multiple of their number. Independent steppers give the same particles as on one
+        device, bit for bit; interacting ones agree to float rounding. With several
+        processes (``jax.distributed.initialize`` first, one process per host) checkpoints
+        are written per process and the result holds all particles on every process
+        (:mod:`flowpost.engine` (sharding)).
 
     Returns
     -------
@@ -322,7 +333,8 @@ def run(
     check_stepper(stepper)
     steps, window = check_run_args(steps, window, on_blowup, key, time_budget, checkpoint_every, progress)
     _check_key(key)
-    checkpoint = None if checkpoint is None else check_writable(checkpoint, "checkpoint")  # before any work
+    if checkpoint is not None:  # before any work; one file per process of a multi-process run
+        checkpoint = check_writable(process_path(check_writable(checkpoint, "checkpoint")), "checkpoint")
     if monitor is not None and not isinstance(monitor, Monitor):
         raise fail("monitor", "a flowpost.Monitor instance (or None for the default)", monitor, TypeError)
     if monitor is not None:
@@ -330,15 +342,23 @@ def run(
     controller = resolve_controller(stepper, step_size, on_blowup)
     bound, x0 = target.bind(init)
     found = check_start(bound, x0) + spread_findings(stepper, bound, x0)
+    sharding = as_particle_sharding(devices)  # its mesh is current (@in_particle_mesh)
+    if sharding is not None:  # particles over the devices, data and numbers replicated
+        sharding.check_count(x0.shape[0])
+        bound, x0, key = sharding.place(bound, -1), sharding.place(x0, x0.shape[0]), sharding.place(key, -1)
     monitor = Monitor() if monitor is None else monitor
 
     carry = start_carry(stepper, controller, bound, x0, key)
+    if sharding is not None:
+        carry = sharding.place(carry, x0.shape[0])
     reductions = check_step_contract(stepper, controller, bound, carry, key)
     identity = identity_of(stepper, controller, bound)
     step = 0
     history = History()
     if resume is not None:
-        carry, step, key, history = load_checkpoint(resume, carry, identity)
+        carry, step, key, history = load_checkpoint(process_path(resume), carry, identity)
+        if sharding is not None:
+            carry, key = sharding.place(carry, x0.shape[0]), sharding.place(key, -1)
     else:
         record_findings(history, found, step)
     monitor.open(bound, stepper, carry.state)
@@ -371,7 +391,7 @@ def run(
                 ahead = _launch(
                     stepper, controller, bound, new, key, step + n, n_next, tape_index, window, every, monitor
                 )
-            stats, taped, measured = jax.device_get((launched.stats, launched.taped, launched.measured))
+            stats, taped, measured = jax.device_get(host_copy((launched.stats, launched.taped, launched.measured)))
             stats = {k: np.asarray(v)[:n] for k, v in stats.items()}
             taped = None if taped is None else np.asarray(taped)[: n // every]
             elapsed = time.perf_counter() - t_start
@@ -443,7 +463,7 @@ def run(
     report = {**stepper.report(carry.state), **controller.report(carry.cstate)}
     return Result(
         target=bound,
-        state=carry.state,
+        state=host_copy(carry.state),  # gathered from every process of a multi-process run
         history=history,
         status=status,
         reason=reason,

@@ -17,10 +17,12 @@ from ._kernels import RadialKernel as RadialKernel
 from ._kernels import median_distance as median_distance
 from ._kernels import normal_reference_bandwidth as normal_reference_bandwidth
 from ._pairwise import DEFAULT_BLOCK as DEFAULT_BLOCK
+from ._pairwise import PARTICLE_AXIS as PARTICLE_AXIS
 from ._pairwise import interaction_means as interaction_means
 from ._pairwise import kernel_sums as kernel_sums
 from ._pairwise import map_row_blocks as map_row_blocks
 from ._pairwise import pairwise_sqdist as pairwise_sqdist
+from ._pairwise import particle_shards as particle_shards
 from ._pairwise import random_batch_sums as random_batch_sums
 from ._whitening import Whitening as Whitening
 from ._whitening import whiten as whiten
@@ -30,6 +32,7 @@ __all__ = [
     "DEFAULT_MEDIAN_POINTS",
     "FIRST_ORDER_METHODS",
     "IMQ",
+    "PARTICLE_AXIS",
     "RBF",
     "InnerSolver",
     "RadialKernel",
@@ -44,6 +47,7 @@ __all__ = [
     "minimise",
     "normal_reference_bandwidth",
     "pairwise_sqdist",
+    "particle_shards",
     "prox",
     "random_batch_sums",
     "whiten",

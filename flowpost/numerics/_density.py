@@ -108,10 +108,12 @@ def _log_kde(y, centres, bandwidth, *, block):
     log_norm = math.log(n) + 0.5 * d * jnp.log(2.0 * jnp.pi * h * h)
     inv = 0.5 / (h * h)
 
-    def rows(yb: Array) -> Array:
-        return logsumexp(-inv * pairwise_sqdist(yb, xc), axis=1)
+    def rows(yb: Array, shared: tuple[Array, Array]) -> Array:
+        xs, inv_s = shared
+        return logsumexp(-inv_s * pairwise_sqdist(yb, xs), axis=1)
 
-    return map_row_blocks(rows, yc, block=block) - log_norm
+    # the centres go by ``shared`` (not a closure) so that a sharded ensemble can be differentiated
+    return map_row_blocks(rows, yc, block=block, shared=(xc, inv)) - log_norm
 
 
 def grad_log_kde(y: ArrayLike, centres: ArrayLike, bandwidth: ArrayLike, *, block: int = DEFAULT_BLOCK) -> Array:
@@ -133,8 +135,9 @@ def _grad_log_kde(y, centres, bandwidth, *, block):
     yc, xc, h = _kde_setup(y, centres, bandwidth)
     inv = 0.5 / (h * h)
 
-    def rows(yb: Array) -> Array:
-        w = jax.nn.softmax(-inv * pairwise_sqdist(yb, xc), axis=1)
-        return (jnp.matmul(w, xc, precision=_HIGHEST) - yb) / (h * h)
+    def rows(yb: Array, shared: tuple[Array, Array, Array]) -> Array:
+        xs, inv_s, h_s = shared
+        w = jax.nn.softmax(-inv_s * pairwise_sqdist(yb, xs), axis=1)
+        return (jnp.matmul(w, xs, precision=_HIGHEST) - yb) / (h_s * h_s)
 
-    return map_row_blocks(rows, yc, block=block)
+    return map_row_blocks(rows, yc, block=block, shared=(xc, inv, h))

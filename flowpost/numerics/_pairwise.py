@@ -27,6 +27,26 @@ recomputes each block instead of storing all blocks (which would again be
 Gaussian kernel densities of :mod:`flowpost.numerics._density` and, in
 :mod:`flowpost.diagnostics`, the kernel Stein discrepancy.
 
+Sharded ensembles
+-----------------
+Inside :func:`flowpost.run` with ``devices=`` the particle axis is sharded over a 1-D device
+mesh whose axis is named :data:`PARTICLE_AXIS` (:func:`jax.set_mesh` is active while the run
+is traced; :func:`particle_shards` reads it).  Then:
+
+* :func:`map_row_blocks` maps each device's own ``N / P`` rows (``jax.shard_map``); whatever
+  ``fn`` reads besides its rows (the sources of a kernel sum, a key) is gathered to every
+  device (an all-gather of positions and scores: ``O(N d)`` per device, plus one block
+  ``O(block * N)``).  The kernel densities, the Stein discrepancy and EnsembleLangevin's
+  noise take this path.
+* :func:`kernel_sums` passes the source shards round a ring (``lax.ppermute``, ``P`` visits):
+  each device holds its ``N / P`` destination rows, one visiting source shard and its values
+  (``O(N / P * d)``), and one block against it, ``O(block * N / P)``; no ``N x N`` matrix and
+  no gathered ensemble.  The sums are the same up to float rounding (the order of the
+  additions over sources changes), so SVGD and BlobFlow agree with the unsharded run to
+  float rounding.
+
+Without a mesh (or with one device) the unsharded code runs, number for number unchanged.
+
 Random batches
 --------------
 :func:`random_batch_sums` and :func:`interaction_means` implement the random
@@ -60,11 +80,14 @@ ArrayLike = Any
 
 __all__ = [
     "DEFAULT_BLOCK",
+    "PARTICLE_AXIS",
     "interaction_means",
     "kernel_sums",
     "map_row_blocks",
     "pairwise_sqdist",
+    "particle_shards",
     "random_batch_sums",
+    "ring_kernel_sums",
 ]
 
 #: Default number of destination rows processed at once by the blocked sums.
@@ -73,6 +96,28 @@ __all__ = [
 DEFAULT_BLOCK: int = 512
 
 _HIGHEST = lax.Precision.HIGHEST
+
+#: Name of the mesh axis over which :func:`flowpost.run` shards the particle axis.
+PARTICLE_AXIS: str = "particles"
+
+
+def particle_shards() -> int:
+    """How many shards the particle axis has where this is traced: the size of the mesh axis
+    :data:`PARTICLE_AXIS` of the active mesh (:func:`jax.set_mesh`) when it is not already
+    manual (inside ``shard_map``), else 1."""
+    mesh = jax.sharding.get_abstract_mesh()
+    if mesh.empty or PARTICLE_AXIS not in mesh.axis_names:
+        return 1
+    i = mesh.axis_names.index(PARTICLE_AXIS)
+    if mesh.axis_types[i] == jax.sharding.AxisType.Manual:
+        return 1
+    return int(mesh.axis_sizes[i])
+
+
+def _sharded_rows(n: int) -> int:
+    """The shard count to split ``n`` rows over (1: run unsharded)."""
+    p = particle_shards()
+    return p if p > 1 and n % p == 0 else 1
 
 
 def check_block(block: Any) -> int:
@@ -101,7 +146,7 @@ def pairwise_sqdist(y: Array, x: Array) -> Array:
     return jnp.maximum(r2, 0.0)
 
 
-def map_row_blocks(fn: Callable[[Any], Any], rows: Any, *, block: int = DEFAULT_BLOCK) -> Any:
+def map_row_blocks(fn: Callable[..., Any], rows: Any, *, block: int = DEFAULT_BLOCK, shared: Any = None) -> Any:
     r"""Apply a row-block function over the leading axis in blocks of ``block``.
 
     ``rows`` is a pytree of arrays sharing the leading length ``n``.  The
@@ -116,6 +161,17 @@ def map_row_blocks(fn: Callable[[Any], Any], rows: Any, *, block: int = DEFAULT_
 
     Peak memory is that of one call of ``fn`` (e.g. ``O(b N)`` for a block
     against ``N`` sources) plus the inputs and outputs.
+
+    ``shared`` (optional, a pytree): arrays every block reads whole (the sources of a kernel
+    sum); ``fn`` is then called as ``fn(block_rows, shared)``. The result is the same as
+    closing over them, but under a sharded particle axis they become explicit replicated
+    inputs of the per-device map, which reverse-mode differentiation through the map needs
+    (pass whatever the caller differentiates by ``shared``, not by a closure).
+
+    With the particle axis sharded over ``P`` devices (module docstring) and ``n`` divisible
+    by ``P``, each device maps its own ``n / P`` rows in blocks of ``min(block, n / P)``, and
+    every array ``fn`` reads besides its rows is gathered whole to each device: per device
+    ``O(b N)`` for the block plus the gathered arrays (``O(N d)`` for positions and scores).
     """
     block = check_block(block)
     leaves = jax.tree.leaves(rows)
@@ -127,6 +183,28 @@ def map_row_blocks(fn: Callable[[Any], Any], rows: Any, *, block: int = DEFAULT_
             raise ValueError(f"rows: expected arrays sharing the leading length {n}; got shape {leaf.shape}")
     if n < 1:
         raise fail("rows", "at least one row", rows)
+    p = _sharded_rows(n)
+    if p > 1:
+        return _map_sharded(fn, rows, block, n // p, shared)
+    if shared is not None:
+        return _map_local(lambda rb: fn(rb, shared), rows, block, n)
+    return _map_local(fn, rows, block, n)
+
+
+def _map_sharded(fn: Callable[..., Any], rows: Any, block: int, n_local: int, shared: Any) -> Any:
+    """Each device maps its own ``n_local`` rows; ``shared`` and whatever ``fn`` closes over
+    are replicated, i.e. gathered whole to every device."""
+    spec = jax.sharding.PartitionSpec(PARTICLE_AXIS)
+    if shared is None:
+        return jax.shard_map(lambda r: _map_local(fn, r, block, n_local), in_specs=spec, out_specs=spec)(rows)
+
+    def local(r, c):
+        return _map_local(lambda rb: fn(rb, c), r, block, n_local)
+
+    return jax.shard_map(local, in_specs=(spec, jax.sharding.PartitionSpec()), out_specs=spec)(rows, shared)
+
+
+def _map_local(fn: Callable[[Any], Any], rows: Any, block: int, n: int) -> Any:
     b = min(block, n)
     n_blocks = -(-n // b)
     pad = n_blocks * b - n
@@ -221,8 +299,55 @@ def _kernel_sums(kernel, x_src, values, x_dst, *, block, scale):
     shift = lax.stop_gradient(jnp.mean(x_src, axis=0))
     xc = x_src - shift
     yc = x_dst - shift
-    kv, grad = map_row_blocks(lambda yb: _sums_block(kernel, s, yb, xc, v), yc, block=block)
+    p = _sharded_rows(n)
+    if p > 1 and x_dst.shape[0] % p == 0:
+        kv, grad = ring_kernel_sums(kernel, s, yc, xc, v, block=block)
+    else:
+        kv, grad = map_row_blocks(lambda yb: _sums_block(kernel, s, yb, xc, v), yc, block=block)
     return kv.reshape((x_dst.shape[0], *trailing)), grad
+
+
+def ring_kernel_sums(kernel: RadialKernel, scale: Array, y: Array, x: Array, v: Array, *, block: int):
+    r"""The sums of :func:`kernel_sums` (centred ``y``, ``x``, flat ``v``) with the particle axis
+    sharded over ``P`` devices, by ring passing.
+
+    Device ``p`` holds its destination rows ``y^(p)`` and source shard ``(x^(p), v^(p))``. In
+    ``P`` visits it adds the sums of its rows against the visiting shard (row blocks of
+    ``min(block, M / P)``) and hands the shard on to its neighbour (``lax.ppermute``,
+    ``p -> p + 1 mod P``), so after ``P`` visits every row has met every source:
+
+    .. math::
+
+        A_i = \sum_{q=0}^{P-1} \sum_{j \in q} k(x_j, y_i) v_j, \qquad
+        B_i = \sum_q \sum_{j \in q} 2 f'(|x_j - y_i|^2)(x_j - y_i).
+
+    Memory per device: the rows and accumulators ``O(M / P (d + k))``, the visiting shard
+    ``O(N / P (d + k))`` (``k`` columns of ``v``) and one block
+    ``O(min(block, M / P) * N / P)``: never ``N x N``, never the gathered ensemble.
+    Communication per call: ``P - 1`` passes of ``N / P (d + k)`` numbers per device.
+    """
+    spec = jax.sharding.PartitionSpec(PARTICLE_AXIS)
+    n_shards = particle_shards()
+    ring = [(i, (i + 1) % n_shards) for i in range(n_shards)]
+    m_local = y.shape[0] // n_shards
+
+    def local(yl, xl, vl):
+        def sums(xs, vs):
+            return _map_local(lambda yb: _sums_block(kernel, scale, yb, xs, vs), yl, block, m_local)
+
+        def visit(carry, _):
+            kv, grad, xs, vs = carry
+            dkv, dgrad = sums(xs, vs)
+            xs, vs = lax.ppermute((xs, vs), PARTICLE_AXIS, ring)  # hand the shard on
+            return (kv + dkv, grad + dgrad, xs, vs), None
+
+        # one accumulator per device ("varying" over the particle axis)
+        zeros = (lax.pcast(jnp.zeros((m_local, vl.shape[1]), vl.dtype), PARTICLE_AXIS, to="varying"), 0.0 * yl)
+        (kv, grad, xs, vs), _ = lax.scan(visit, (*zeros, xl, vl), None, length=n_shards - 1)
+        dkv, dgrad = sums(xs, vs)  # the last visiting shard: nothing left to pass on
+        return kv + dkv, grad + dgrad
+
+    return jax.shard_map(local, in_specs=(spec, spec, spec), out_specs=(spec, spec))(y, x, v)
 
 
 def random_batch_sums(
