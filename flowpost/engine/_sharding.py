@@ -99,9 +99,28 @@ class ParticleSharding:
             if not hasattr(leaf, "shape") or not hasattr(leaf, "dtype"):
                 return leaf
             rows = len(leaf.shape) >= 1 and leaf.shape[0] == n
-            return jax.device_put(leaf, self.rows if rows else self.replicated)
+            return _put(leaf, self.rows if rows else self.replicated)
 
         return jax.tree_util.tree_map(put, tree)
+
+
+def _put(leaf: Any, sharding: NamedSharding) -> Any:
+    """``leaf`` laid out with ``sharding``. Within one process: :func:`jax.device_put`. Over
+    several processes (devices this process cannot address): an array already global is
+    resharded by a compiled identity (every process runs it); a host value (the same on every
+    process: the user's ``init``, a key) is cut into this process's shards
+    (:func:`jax.make_array_from_callback`); PRNG keys travel as their key data."""
+    if sharding.is_fully_addressable:
+        return jax.device_put(leaf, sharding)
+    if isinstance(leaf, jax.Array) and not leaf.is_fully_addressable:
+        if leaf.sharding == sharding:
+            return leaf
+        return jax.jit(lambda a: a, out_shardings=sharding)(leaf)
+    if jax.dtypes.issubdtype(leaf.dtype, jax.dtypes.prng_key):
+        data = _put(jax.random.key_data(leaf), sharding)
+        return jax.random.wrap_key_data(data, impl=jax.random.key_impl(leaf))
+    host = np.asarray(leaf)
+    return jax.make_array_from_callback(host.shape, sharding, lambda index: host[index])
 
 
 def as_particle_sharding(devices: Any) -> ParticleSharding | None:
