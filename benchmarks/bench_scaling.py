@@ -8,7 +8,7 @@ Measured, best of three after a compiling run, in the same run of this script:
 
 * SVGD: ``fp.run(..., devices=jax.devices()[:P])`` for 20 steps in one window (``BareMonitor``):
   time per step per particle pair (``t / (steps N^2)``); the kernel sums pass the source
-  shards round a ring (``flowpost.numerics.ring_kernel_sums``);
+  shards round a ring (ring passing in ``flowpost.numerics``, pairwise sums);
 * the monitor's Stein discrepancy over all N particles (``Monitor(discrepancy_points=N)``
   computes this figure), on sharded positions and scores: time per evaluation per pair.
 
