@@ -121,11 +121,13 @@ INTERACTING = ["SVGD", "BlobFlow", "EnsembleLangevin", "JKO", "ForwardBackward"]
 
 
 def _start(script: str, args: list[str], devices: int) -> subprocess.Popen:
+    """A fresh interpreter running ``script`` on ``devices`` forced host devices."""
     env = {**os.environ, "JAX_PLATFORMS": "cpu", "XLA_FLAGS": f"--xla_force_host_platform_device_count={devices}"}
     root = os.path.dirname(os.path.dirname(os.path.abspath(fp.__file__)))  # this checkout's flowpost
     env["PYTHONPATH"] = os.pathsep.join([root, *filter(None, [os.environ.get("PYTHONPATH")])])
     return subprocess.Popen(
         [sys.executable, "-c", script, *args],
+        stdin=subprocess.PIPE,
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
@@ -173,12 +175,29 @@ PROCESS = textwrap.dedent("""
         r = fp.run(log_p, fp.Langevin(step_size=0.05), x0, steps=30, checkpoint_every=1, **kw)
         print("checkpointed", r.steps, flush=True)
         time.sleep(300)  # killed here by the test
-    else:
+    else:  # started early: compile the window (no checkpoint), then wait for the killed run's files
+        warm = {**kw, "checkpoint": None}
+        fp.run(log_p, fp.Langevin(step_size=0.05), x0, steps=10, **warm)
+        print("ready", flush=True)
+        assert sys.stdin.readline().strip() == "go"
         r = fp.run(log_p, fp.Langevin(step_size=0.05), x0, steps=60, resume=ck, **kw)
         if pid == 0:
             np.save(os.path.join(folder, "final.npy"), r.unconstrained)
         print("done", r.steps, r.status, r.unconstrained.shape[0], flush=True)
 """)
+
+
+def _line(child: subprocess.Popen) -> str:
+    """The child's next line of output that is not one of gloo's own."""
+    lines = iter(child.stdout.readline, "") if child.stdout else iter(())
+    return next((x.strip() for x in lines if not x.startswith("[Gloo]")), "")
+
+
+def _said(child: subprocess.Popen) -> str:
+    """A failed child's exit status and the end of its error output (it is killed first)."""
+    child.kill()
+    _, err = child.communicate()
+    return f"exit {child.returncode}: {err[-3000:]}"
 
 
 def _free_port() -> str:
@@ -190,23 +209,27 @@ def _free_port() -> str:
 def test_two_processes_checkpoint_are_killed_and_resume_as_one_process(tmp_path, sharded_child):
     """Two processes (2 devices each, one mesh of 4) run 30 Langevin steps, each writing its
     own checkpoint (``run.process-K-of-2.npz``: its shard and the replicated leaves), and are
-    killed; two new processes resume from those files to step 60. Process 0's result (all 64
-    particles, gathered) is bit-identical to a one-process, one-device run of 60 steps
-    computed here. (``sharded_child`` is only started here, to run meanwhile.)"""
-    port = _free_port()
-    first = [_start(PROCESS, [port, str(i), "first", str(tmp_path)], 2) for i in range(2)]
+    killed (SIGKILL); two new processes (started meanwhile, waiting) resume from those files
+    to step 60. Process 0's result (all 64 particles, gathered) is bit-identical to a
+    one-process, one-device run of 60 steps computed here. (``sharded_child`` is only
+    started here, to run meanwhile.)"""
+    first_port, second_port = _free_port(), _free_port()
+    first = [_start(PROCESS, [first_port, str(i), "first", str(tmp_path)], 2) for i in range(2)]
+    second = [_start(PROCESS, [second_port, str(i), "second", str(tmp_path)], 2) for i in range(2)]  # they wait
     try:
         for child in first:
-            lines = iter(child.stdout.readline, "") if child.stdout else iter(())
-            line = next((x.strip() for x in lines if not x.startswith("[Gloo]")), "")  # gloo's own lines first
-            assert line == "checkpointed 30", (line, child.poll())
+            assert _line(child) == "checkpointed 30", _said(child)
     finally:
         for child in first:
             child.kill()  # SIGKILL: no clean shutdown
             child.communicate()
     assert sorted(os.listdir(tmp_path)) == ["run.process-0-of-2.npz", "run.process-1-of-2.npz"]
-    port = _free_port()
-    second = [_start(PROCESS, [port, str(i), "second", str(tmp_path)], 2) for i in range(2)]
+    for child in second:
+        assert _line(child) == "ready", _said(child)
+    for child in second:  # both told before either is waited for: they run together
+        if child.stdin:
+            child.stdin.write("go\n")
+            child.stdin.flush()
     outs = [child.communicate(timeout=120) for child in second]
     for child, (out, err) in zip(second, outs):
         assert child.returncode == 0, err[-4000:]
