@@ -20,6 +20,8 @@ import pytest
 
 import flowpost as fp
 
+pytestmark = pytest.mark.slow  # every test here runs for several seconds (scheduled first)
+
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 
 
