@@ -381,8 +381,10 @@ def item(theta, row):
 def prior(theta):
     return jnp.sum(jst.norm.logpdf(theta["w"], 0.0, 5.0))
 
+import numpy as np
 p = int(sys.argv[2])
-target = fp.ItemSum(item, fp.RowFile(sys.argv[1]), log_prior=prior, batch=1000).anchor({"w": jnp.zeros(p)})
+data = fp.RowFile(sys.argv[1]) if sys.argv[3] == "file" else jnp.asarray(np.load(sys.argv[1]))  # the control
+target = fp.ItemSum(item, data, log_prior=prior, batch=1000).anchor({"w": jnp.zeros(p)})
 init = {"w": 0.01 * jax.random.normal(jax.random.key(0), (1000, p))}
 r = fp.run(target, fp.SGLD(step_size=1e-6), init, key=jax.random.key(1), steps=100,
            monitor=fp.Monitor(discrepancy=False), progress=False)
@@ -392,13 +394,13 @@ print(json.dumps({"peak_kib": peak, "status": r.status}))
 """
 
 
-def _peak_kib(path, p):
+def _peak_kib(path, p, mode="file"):
     import json
     import subprocess
     import sys
 
     out = subprocess.run(
-        [sys.executable, "-c", _MEMORY_CHILD, os.fspath(path), str(p)], capture_output=True, text=True, check=True
+        [sys.executable, "-c", _MEMORY_CHILD, os.fspath(path), str(p), mode], capture_output=True, text=True, check=True
     )
     return json.loads(out.stdout.strip().splitlines()[-1])["peak_kib"]
 
@@ -410,16 +412,20 @@ def test_million_rows_sg_langevin_with_control_variates_agrees_with_full_data_ma
     .npy file. SG-Langevin with control variates, batch 1,000, read from the file, agrees
     with full-data MALA (data in memory) in every posterior mean within 0.1 posterior sd and
     in every sd within 10%; both started over-dispersed (mode + 3 sd noise, the mode from
-    Newton's method in numpy) so that agreement is reached, not kept. N = 2,500 particles
-    each: the sd criterion is 5 Monte-Carlo standard errors of the ratio of two ensembles'
-    sds (sqrt(1 / N) = 2%), the mean criterion 3.5 of a difference of two ensemble means
-    (sd sqrt(2 / N) = 0.028 sd; each against the numpy Laplace mode it is 5, 0.02 sd).
+    Newton's method in numpy) so that agreement is reached, not kept. N = 2,500 SG-Langevin
+    particles and 1,000 MALA particles (each MALA step costs N n = 10^9 item gradients): the
+    sd criterion is 3.8 Monte-Carlo standard errors of the ratio of the two ensembles' sds
+    (sqrt(1/(2 N1) + 1/(2 N2)) = 2.6%), the mean criterion 2.7 of the difference of their
+    means (sd sqrt(1/N1 + 1/N2) = 0.037 sd): the issue's criteria, not widened; against
+    the numpy Laplace mode SG-Langevin's mean criterion is 5 se (0.02 sd).
     SG-Langevin's step h = 0.1 lambda_min(C) biases its variance by 1 / (1 - h / (2 lambda))
     <= 5% (ULA on a Gaussian, Roberts and Tweedie, 1996), inside the 10%.
 
     Memory: the SG-Langevin pipeline in a child process on the 1,000,000-row file and on a
     10,000-row file (the same code, particles and chunk of rows per full pass): its peak
-    resident memory grows by less than the data's size on disk."""
+    resident memory grows by less than the data's size on disk. The control: the same
+    pipeline with the rows loaded into memory grows by at least the data's size (so the
+    measure sees a loaded file)."""
     p, n, n_part = 5, 1_000_000, 2500
     from sklearn.datasets import make_classification
 
@@ -444,16 +450,20 @@ def test_million_rows_sg_langevin_with_control_variates_agrees_with_full_data_ma
     # full-data MALA: the exact full-data score of an ItemSum over the rows in memory (chunked
     # passes checked against numpy above; a plain Target over all rows would hold (N, n) arrays)
     full = fp.ItemSum(_logistic_item, jnp.asarray(rows), log_prior=_prior, batch=1000)
-    ma = fp.run(full, fp.MALA(step_size=0.5 * lam_min), start, key=jax.random.key(2), steps=40, window=20,
+    few = {"w": start["w"][:1000]}
+    ma = fp.run(full, fp.MALA(step_size=0.5 * lam_min), few, key=jax.random.key(2), steps=40, window=20,
                 monitor=mon, progress=False)  # fmt: skip
     a, b = np.asarray(sg.particles["w"], np.float64), np.asarray(ma.particles["w"], np.float64)
     assert np.all(np.abs(a.mean(0) - b.mean(0)) < 0.1 * b.std(0)), (a.mean(0) - b.mean(0)) / b.std(0)
     assert np.all(np.abs(a.std(0) / b.std(0) - 1) < 0.10), a.std(0) / b.std(0)
-    # and both are the posterior (Laplace in numpy, exact to O(n^-1/2) = 0.1% here)
-    assert np.all(np.abs(b.mean(0) - mode) < 0.1 * sd) and np.all(np.abs(b.std(0) / sd - 1) < 0.10)
+    # and SG-Langevin's ensemble is the posterior (Laplace in numpy, exact to O(n^-1/2) = 0.1%)
+    assert np.all(np.abs(a.mean(0) - mode) < 0.1 * sd) and np.all(np.abs(a.std(0) / sd - 1) < 0.10)
 
-    grown = (_peak_kib(path, p) - _peak_kib(small, p)) * 1024
+    base = _peak_kib(small, p)
+    grown = (_peak_kib(path, p) - base) * 1024
     assert grown < rows.nbytes, (grown, rows.nbytes)
+    loaded = (_peak_kib(path, p, "memory") - base) * 1024
+    assert loaded > rows.nbytes, (loaded, rows.nbytes)
 
 
 def test_readme_big_data_block_runs(tmp_path):
