@@ -476,8 +476,8 @@ def test_readme_big_data_block_runs(tmp_path):
     text = (Path(__file__).resolve().parents[1] / "README.md").read_text()
     block = next(b for b in re.findall(r"```python\n(.*?)```", text, re.S) if "fp.ItemSum" in b)
     scope: dict = {}
-    exec(compile(block.replace("steps=2000,", "steps=200, progress=False,"), "README", "exec"), scope)
-    rows = _classification(20_000, 3, seed=4).astype(np.float32)
+    exec(compile(block.replace("steps=2000,", "steps=100, progress=False,"), "README", "exec"), scope)
+    rows = _classification(5_000, 3, seed=4).astype(np.float32)
     np.save(tmp_path / "rows.npy", rows)
     r = scope["fit"](os.fspath(tmp_path / "rows.npy"), 3, n_particles=64)
     mode, cov = _numpy_mode(rows.astype(np.float64))
