@@ -20,6 +20,8 @@ import pytest
 
 import flowpost as fp
 
+pytestmark = pytest.mark.slow  # every test here runs for several seconds (scheduled first)
+
 Z = 5.0  # tolerance in Monte-Carlo standard errors
 
 
@@ -141,6 +143,63 @@ def test_sg_langevin_gaussian_mean_matches_closed_form_with_noise_inflation():
         rec = r.history.windows()[-1]
         assert rec["item_grads"] == steps * b
         assert abs(rec["score_variance"] / v_noise - 1) < 0.02, rec["score_variance"] / v_noise
+
+
+def test_batch_form_gives_the_item_form_estimates():
+    """A log-likelihood written per batch (form="batch": the sum over the rows it is given)
+    gives the same full-data score (the numpy closed form, PRML (2006) eq. 4.91) and, for
+    one key, the same batch estimate as the per-item form; its variance estimate from
+    groups of the batch is unbiased for the draws' variance (its mean over K = 2,000 batches
+    within 5 se of the draws' empirical variance)."""
+    with jax.enable_x64(True):
+        rows = _classification(3000, 3, seed=5)
+
+        def per_batch(theta, r):
+            z = r[:, :-1] @ theta["w"]
+            return jnp.sum(r[:, -1] * z - jnp.logaddexp(0.0, z))
+
+        w = jnp.asarray([[0.3, -0.2, 0.5], [0.0, 0.1, 0.2]])
+        item_t, x = fp.ItemSum(_logistic_item, jnp.asarray(rows), log_prior=_prior, batch=100).bind({"w": w})
+        batch_t, _ = fp.ItemSum(
+            per_batch, jnp.asarray(rows), log_prior=_prior, batch=100, form="batch", groups=20
+        ).bind({"w": w})
+        ref = np.stack([_numpy_score(rows, np.asarray(wi)) for wi in w])
+        np.testing.assert_allclose(np.asarray(batch_t.score(x)), ref, rtol=1e-10, atol=1e-8)
+        k = jax.random.key(3)
+        np.testing.assert_allclose(
+            np.asarray(batch_t.estimate(x, k).score), np.asarray(item_t.estimate(x, k).score), rtol=1e-10
+        )
+        keys = jax.random.split(jax.random.key(4), 2000)
+        ests = jax.vmap(lambda kk: batch_t.estimate(x, kk))(keys)
+        emp = np.asarray(ests.score).var(axis=0, ddof=1)
+        rep = np.asarray(ests.variance).mean(axis=0)
+        # se of the difference: the empirical variance's (v sqrt(2/K)) and the mean report's (sd / sqrt(K))
+        se = np.sqrt((emp * np.sqrt(2 / len(keys))) ** 2 + np.asarray(ests.variance).var(axis=0) / len(keys))
+        assert np.all(np.abs(rep - emp) < Z * se), (rep - emp) / se
+
+
+def test_monitor_discrepancy_takes_full_data_scores():
+    """On a minibatch target the monitor's Stein discrepancy is computed from full-data
+    scores: the same figure as for the equivalent plain Target (data in one log-density)
+    at the same particles and step, while the steppers' kept scores are noisy estimates."""
+    rows = _classification(2000, 2, seed=6).astype(np.float32)
+    init = {"w": jnp.asarray(np.random.default_rng(0).normal(0.0, 0.1, (64, 2)), jnp.float32)}
+    mini, x = fp.ItemSum(_logistic_item, jnp.asarray(rows), log_prior=_prior, batch=20).bind(init)
+    full, _ = fp.Target(
+        lambda th, d: _prior(th) + jnp.sum(jax.vmap(lambda r: _logistic_item(th, r))(d)), data=jnp.asarray(rows)
+    ).bind(init)
+    stepper = fp.SVGD(step_size=1e-3)
+    figs = []
+    for target in (mini, full):
+        mon = fp.Monitor(discrepancy_points=32)
+        state = stepper.start(target, x, jax.random.key(0))
+        mon.open(target, stepper, state)
+        figs.append(mon.measure(target, state, 100))
+    assert np.isfinite(figs[0]["ksd"])
+    np.testing.assert_allclose(figs[0]["ksd"], figs[1]["ksd"], rtol=1e-4)
+    # the kept score of the minibatch target is an estimate, not the full score
+    st = stepper.start(mini, x, jax.random.key(0))
+    assert not np.allclose(np.asarray(st.score), np.asarray(full.score(x)), rtol=1e-3)
 
 
 @pytest.fixture
@@ -306,3 +365,121 @@ def test_item_sum_rejects_bad_declarations(tmp_path):
     target = fp.ItemSum(lambda th, r: jnp.zeros(2), y, batch=2)
     with pytest.raises(ValueError, match="log_lik: expected a scalar"):
         fp.run(target, fp.SGLD(step_size=0.1), {"mu": jnp.zeros(4)}, key=jax.random.key(0), steps=2, progress=False)
+
+
+# ----- the issue's 1,000,000-row checks (minutes: `python -m pytest -m bigdata tests/test_bigdata.py`) -----
+
+_MEMORY_CHILD = """
+import json, sys
+import jax, jax.numpy as jnp, jax.scipy.stats as jst
+import flowpost as fp
+
+def item(theta, row):
+    z = jnp.dot(row[:-1], theta["w"])
+    return row[-1] * z - jnp.logaddexp(0.0, z)
+
+def prior(theta):
+    return jnp.sum(jst.norm.logpdf(theta["w"], 0.0, 5.0))
+
+import numpy as np
+p = int(sys.argv[2])
+data = fp.RowFile(sys.argv[1]) if sys.argv[3] == "file" else jnp.asarray(np.load(sys.argv[1]))  # the control
+target = fp.ItemSum(item, data, log_prior=prior, batch=1000).anchor({"w": jnp.zeros(p)})
+init = {"w": 0.01 * jax.random.normal(jax.random.key(0), (1000, p))}
+r = fp.run(target, fp.SGLD(step_size=1e-6), init, key=jax.random.key(1), steps=100,
+           monitor=fp.Monitor(discrepancy=False), progress=False)
+# VmHWM: this process's own peak (ru_maxrss would carry the parent's peak over fork + exec)
+peak = next(int(line.split()[1]) for line in open("/proc/self/status") if line.startswith("VmHWM:"))
+print(json.dumps({"peak_kib": peak, "status": r.status}))
+"""
+
+
+def _peak_kib(path, p, mode="file"):
+    import json
+    import subprocess
+    import sys
+
+    out = subprocess.run(
+        [sys.executable, "-c", _MEMORY_CHILD, os.fspath(path), str(p), mode], capture_output=True, text=True, check=True
+    )
+    return json.loads(out.stdout.strip().splitlines()[-1])["peak_kib"]
+
+
+@pytest.mark.bigdata
+def test_million_rows_sg_langevin_with_control_variates_agrees_with_full_data_mala(tmp_path):
+    """The issue's check: logistic regression on 1,000,000 rows from scikit-learn's
+    make_classification (random_state=0, 5 informative features), stored as a memory-mapped
+    .npy file. SG-Langevin with control variates, batch 1,000, read from the file, agrees
+    with full-data MALA (data in memory) in every posterior mean within 0.1 posterior sd and
+    in every sd within 10%; both started over-dispersed (mode + 3 sd noise, the mode from
+    Newton's method in numpy) so that agreement is reached, not kept. N = 2,500 SG-Langevin
+    particles and 1,000 MALA particles (each MALA step costs N n = 10^9 item gradients): the
+    sd criterion is 3.8 Monte-Carlo standard errors of the ratio of the two ensembles' sds
+    (sqrt(1/(2 N1) + 1/(2 N2)) = 2.6%), the mean criterion 2.7 of the difference of their
+    means (sd sqrt(1/N1 + 1/N2) = 0.037 sd): the issue's criteria, not widened; against
+    the numpy Laplace mode SG-Langevin's mean criterion is 5 se (0.02 sd).
+    SG-Langevin's step h = 0.1 lambda_min(C) biases its variance by 1 / (1 - h / (2 lambda))
+    <= 5% (ULA on a Gaussian, Roberts and Tweedie, 1996), inside the 10%.
+
+    Memory: the SG-Langevin pipeline in a child process on the 1,000,000-row file and on a
+    10,000-row file (the same code, particles and chunk of rows per full pass): its peak
+    resident memory grows by less than the data's size on disk. The control: the same
+    pipeline with the rows loaded into memory grows by at least the data's size (so the
+    measure sees a loaded file)."""
+    p, n, n_part = 5, 1_000_000, 2500
+    from sklearn.datasets import make_classification
+
+    x, y = make_classification(n_samples=n, n_features=p, n_informative=p, n_redundant=0, n_repeated=0, random_state=0)
+    rows = np.column_stack([x, y]).astype(np.float32)
+    path = tmp_path / "rows.npy"
+    np.save(path, rows)
+    small = tmp_path / "small.npy"
+    np.save(small, rows[:10_000])
+    mode, cov = _numpy_mode(rows.astype(np.float64))
+    sd = np.sqrt(np.diag(cov))
+    lam_min = float(np.linalg.eigvalsh(cov).min())
+    rng = np.random.default_rng(2)
+    start = {"w": jnp.asarray(mode + 3.0 * sd * rng.standard_normal((n_part, p)), jnp.float32)}
+    mon = fp.Monitor(discrepancy=False)
+
+    target = fp.ItemSum(_logistic_item, fp.RowFile(path), log_prior=_prior, batch=1000).anchor(
+        {"w": jnp.zeros(p, jnp.float32)}
+    )
+    sg = fp.run(target, fp.SGLD(step_size=0.1 * lam_min), start, key=jax.random.key(1), steps=200, monitor=mon,
+                progress=False)  # fmt: skip
+    # full-data MALA: the exact full-data score of an ItemSum over the rows in memory (chunked
+    # passes checked against numpy above; a plain Target over all rows would hold (N, n) arrays)
+    full = fp.ItemSum(_logistic_item, jnp.asarray(rows), log_prior=_prior, batch=1000)
+    few = {"w": start["w"][:1000]}
+    ma = fp.run(full, fp.MALA(step_size=0.5 * lam_min), few, key=jax.random.key(2), steps=40, window=20,
+                monitor=mon, progress=False)  # fmt: skip
+    a, b = np.asarray(sg.particles["w"], np.float64), np.asarray(ma.particles["w"], np.float64)
+    assert np.all(np.abs(a.mean(0) - b.mean(0)) < 0.1 * b.std(0)), (a.mean(0) - b.mean(0)) / b.std(0)
+    assert np.all(np.abs(a.std(0) / b.std(0) - 1) < 0.10), a.std(0) / b.std(0)
+    # and SG-Langevin's ensemble is the posterior (Laplace in numpy, exact to O(n^-1/2) = 0.1%)
+    assert np.all(np.abs(a.mean(0) - mode) < 0.1 * sd) and np.all(np.abs(a.std(0) / sd - 1) < 0.10)
+
+    base = _peak_kib(small, p)
+    grown = (_peak_kib(path, p) - base) * 1024
+    assert grown < rows.nbytes, (grown, rows.nbytes)
+    loaded = (_peak_kib(path, p, "memory") - base) * 1024
+    assert loaded > rows.nbytes, (loaded, rows.nbytes)
+
+
+def test_readme_big_data_block_runs(tmp_path):
+    """The README's "Many data items" script runs as written on a file of rows (fewer steps);
+    the posterior it gives is near the numpy Laplace mode (within 5 sd: a smoke check, the
+    accuracy is the other tests' business)."""
+    import re
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    block = next(b for b in re.findall(r"```python\n(.*?)```", text, re.S) if "fp.ItemSum" in b)
+    scope: dict = {}
+    exec(compile(block.replace("steps=2000,", "steps=100, progress=False,"), "README", "exec"), scope)
+    rows = _classification(5_000, 3, seed=4).astype(np.float32)
+    np.save(tmp_path / "rows.npy", rows)
+    r = scope["fit"](os.fspath(tmp_path / "rows.npy"), 3, n_particles=64)
+    mode, cov = _numpy_mode(rows.astype(np.float64))
+    assert r.status == "done", r.reason
+    assert np.all(np.abs(np.asarray(r.particles["w"]).mean(0) - mode) < 5 * np.sqrt(np.diag(cov)))

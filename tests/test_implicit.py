@@ -130,6 +130,7 @@ def jko_gaussian_std(s_k, s2, h, k=0.0):
 JKO_1D = JKO(step_size=0.2, solver=InnerSolver(tol=1e-8, max_iters=200))
 
 
+@pytest.mark.slow
 def test_jko_gaussian_mean_exact_and_std_converges_with_n():
     """One particle JKO step on N(m, s2), m = 1, s2 = 0.5, h = 0.2, from the quantile ensemble
     x_i = 3 + 1.5 Phi^-1((i - 1/2)/N) (scipy's normal quantiles; a Gaussian ensemble without

@@ -26,6 +26,7 @@ def _normal(s2):
     return log_p
 
 
+@pytest.mark.slow
 def test_mala_removes_langevin_step_bias():
     """On N(0, s2) with s2 = 1 and h = 0.5 the unadjusted chain x' = (1 - h/s2) x + sqrt(2h) xi
     has stationary variance s2 / (1 - h / (2 s2)) = 4/3, while the Metropolis-adjusted chain

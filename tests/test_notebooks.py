@@ -15,6 +15,8 @@ import nbformat
 import pytest
 from nbclient import NotebookClient
 
+pytestmark = pytest.mark.slow  # each notebook runs in its own kernel (scheduled first)
+
 NOTEBOOKS = Path(__file__).resolve().parent.parent / "notebooks"
 NAMES = sorted(p.name for p in NOTEBOOKS.glob("*.ipynb"))
 

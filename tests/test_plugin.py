@@ -130,6 +130,7 @@ def autoload(monkeypatch):
     monkeypatch.delenv("PYTEST_DISABLE_PLUGIN_AUTOLOAD", raising=False)
 
 
+@pytest.mark.slow
 def test_fixtures_on_a_user_file(pytester, autoload):
     pytester.makepyfile(test_user=USER_TESTS)
     # 20 datasets in 4 bins (39 draws each) keep the calibration runs to a second or two

@@ -193,6 +193,7 @@ def test_vmapped_step_sizes_match_the_ula_variance():
         assert r.report["step_size"] == pytest.approx(h)
 
 
+@pytest.mark.slow
 def test_sweep_shares_a_key_and_matches_single_runs():
     """A sweep member is the same computation as a single run with that step size and key
     (up to float rounding between the batched and unbatched programs)."""
@@ -225,6 +226,7 @@ def _run_x(stepper, log_p, x0, key, steps=30):
     ).unconstrained
 
 
+@pytest.mark.slow
 def test_split_of_parts_reproduces_the_named_steppers_bit_for_bit():
     """The named splitting steppers are recipes over parts: the hand-built Split gives the
     identical ensemble for the same key."""
@@ -329,6 +331,7 @@ SCRIPT = textwrap.dedent('''
 ''')
 
 
+@pytest.mark.slow
 def test_user_prox_run_resumes_in_a_fresh_process(tmp_path):
     """A run with a user prox (a module-level function, identified by its qualified name)
     checkpoints, and a fresh process resumes it to the same end, bit for bit. A checkpoint of

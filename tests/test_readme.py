@@ -5,10 +5,12 @@ import re
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
 
+@pytest.mark.slow
 def test_readme_script_runs(tmp_path):
     text = README.read_text()
     block = re.search(r"```python\n(.*?)```", text, re.S).group(1)

@@ -267,6 +267,8 @@ POSINF_STEPPERS = {
     "ForwardBackward": fp.ForwardBackward(step_size=0.2),
     "ProximalLangevin": fp.ProximalLangevin(step_size=0.1, prox=fp.prox.Box(-20.0, 20.0)),
     "KineticLangevin": fp.KineticLangevin(step_size=0.2, friction=1.0),
+    "SGLD": fp.SGLD(step_size=0.1),  # on a plain target its score estimate is the exact score
+    "SGHMC": fp.SGHMC(step_size=0.2, friction=1.0),
     "Split": fp.Split((fp.Explicit(), fp.HeatFlow()), step_size=0.1, order="strang"),
 }
 

@@ -148,6 +148,7 @@ def _named_target():
     )
 
 
+@pytest.mark.slow
 def test_explicit_and_numerical_proximal_on_named_terms():
     """One Lie step, explicit on the likelihood then proximal on the prior, against the closed
     forms: the gradient step x1 = x + t (c1 - x) / t1^2, and the proximal map of the quadratic
@@ -404,6 +405,7 @@ def _huber(t, lam):
     return t * t / (2 * lam) if a <= lam * RATE else RATE * a - lam * RATE**2 / 2
 
 
+@pytest.mark.slow
 def test_proximal_langevin_laplace_prior_against_quadrature():
     """Posterior of theta with y = 0.5 ~ N(theta, 1) and a Laplace prior with rate 2: density
     ∝ exp(-(theta - y)^2 / 2 - 2 |theta|); mean, variance and P(theta > 0) by
@@ -509,6 +511,7 @@ def test_box_constraint_by_projection_against_truncnorm():
     assert np.all(np.abs(extrapolated - ref) < Z * np.sqrt(5) * se1), (extrapolated - ref) / se1
 
 
+@pytest.mark.slow
 def test_proximal_langevin_user_map_and_options():
     """A user's soft-threshold map (the closed form of the L1 proximal map, "Proximal
     algorithms" (2014), sec. 6.5.2) gives the same chain as the built-in L1Penalty, for both

@@ -125,7 +125,7 @@ class ItemSum(Target):
         batch: int = 1000,
         form: str = "item",
         batches: str = "shared",
-        chunk: int = 65536,
+        chunk: int = 8192,
         groups: int = 10,
         support: Any = None,
     ):

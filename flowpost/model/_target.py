@@ -19,7 +19,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeVar
 
 import jax
 import jax.numpy as jnp
@@ -146,6 +146,9 @@ class _NotAnArray(Exception):
     """Raised while tracing when ``log_p`` returns something that is not a number or an array."""
 
 
+_T = TypeVar("_T", bound="Target")
+
+
 class Target:
     """A log-density over a pytree of parameters, ready for particle steppers.
 
@@ -220,8 +223,8 @@ class Target:
         obj.data = children[0]
         return obj
 
-    def _replace_layout(self, layout: Layout) -> Target:
-        obj = Target.__new__(Target)
+    def _replace_layout(self: _T, layout: Layout) -> _T:
+        obj = Target.__new__(type(self))
         obj._terms, obj._named, obj._support = self._terms, self._named, self._support
         obj.data, obj.layout = self.data, layout
         return obj
@@ -235,7 +238,7 @@ class Target:
     def support(self) -> dict:
         return dict(self._support)
 
-    def bind(self, init: Any) -> tuple[Target, jax.Array]:
+    def bind(self: _T, init: Any) -> tuple[_T, jax.Array]:
         """Fix the parameter layout from ``init`` (pytree with leading axis N) and return the
         bound target and the unconstrained ``(N, d)`` starting ensemble.
 

@@ -28,7 +28,7 @@ import jax.numpy as jnp
 
 from .._pytree import pytree_dataclass
 from .._validate import positive
-from ..model._minibatch import score_estimate
+from ..model import score_estimate
 from .base import Stepper
 
 if TYPE_CHECKING:  # pragma: no cover

@@ -53,7 +53,7 @@ import jax.numpy as jnp
 
 from .._pytree import pytree_dataclass, static
 from .._validate import fail, integer, positive
-from ..model._minibatch import score_estimate, uses_minibatches
+from ..model import score_estimate
 from ..numerics import DEFAULT_BLOCK, IMQ, RBF, RadialKernel, interaction_means
 from .base import ScoredState, Stepper
 
@@ -112,8 +112,10 @@ class SVGD(Stepper):
     Notes
     -----
     Stats per step: ``"kernel_scale"`` (RBF bandwidth or IMQ ``c`` used; averaged over a
-    window) and ``"grad_evals"`` (1, summed; the score at the new ensemble is kept in the
-    state for the next step).
+    window), ``"grad_evals"`` (1, summed; the score at the new ensemble is kept in the
+    state for the next step), ``"item_grads"`` (data-item gradients per particle of a
+    minibatch target, summed; 0 otherwise) and ``"score_variance"`` (the score estimator's
+    variance summed over coordinates, mean over particles; 0 for an exact score).
     """
 
     step_size: float = 1e-2
@@ -123,7 +125,12 @@ class SVGD(Stepper):
 
     stochastic = False  # deterministic (random batches aside): the monitor skips R-hat and ESS
     needs_spread = "coordinates"  # flowpost.run refuses a start this step cannot leave (base.py)
-    reductions: ClassVar[dict[str, str]] = {"kernel_scale": "mean", "grad_evals": "sum"}
+    reductions: ClassVar[dict[str, str]] = {
+        "kernel_scale": "mean",
+        "grad_evals": "sum",
+        "item_grads": "sum",
+        "score_variance": "mean",
+    }
 
     def __post_init__(self):
         object.__setattr__(self, "step_size", positive("step_size", self.step_size))
@@ -138,11 +145,8 @@ class SVGD(Stepper):
             raise ValueError(f"init: expected at least 2 particles for SVGD (it interacts them); got N={n}")
         if self.batch is not None and self.batch > n:
             raise ValueError(f"batch: expected at most the number of particles N={n}; got {self.batch}")
-        if uses_minibatches(target):  # a minibatch estimate of the score (flowpost.ItemSum)
-            est = score_estimate(target, x, key)
-            return ScoredState(x=x, logp=est.logp, score=est.score)
-        logp, score = target.value_and_score(x)
-        return ScoredState(x=x, logp=logp, score=score)
+        est = score_estimate(target, x, key)  # exact, or a minibatch estimate for a flowpost.ItemSum
+        return ScoredState(x=x, logp=est.logp, score=est.score)
 
     def direction(self, x: jax.Array, score: jax.Array, key: jax.Array | None = None) -> tuple[jax.Array, jax.Array]:
         """The SVGD direction ``phi(x_i)`` for every particle and the kernel scale used."""
@@ -155,10 +159,13 @@ class SVGD(Stepper):
         h = jnp.asarray(h, x.dtype)
         phi, scale = self.direction(x, state.score, key if self.batch is not None else None)
         x_new = x + h * phi
-        if uses_minibatches(target):  # the next step's score from a batch drawn with this step's key
-            est = score_estimate(target, x_new, jax.random.fold_in(key, 1))
-            logp, score = est.logp, est.score
-        else:
-            logp, score = target.value_and_score(x_new)
-        stats = {"kernel_scale": jnp.asarray(scale, x.dtype), "grad_evals": jnp.ones((), x.dtype)}
-        return ScoredState(x=x_new, logp=logp, score=score), stats
+        # the next step's score: a minibatch estimate from a batch drawn with this step's key
+        # (flowpost.ItemSum), the exact score otherwise (variance 0, no data items counted)
+        est = score_estimate(target, x_new, jax.random.fold_in(key, 1))
+        stats = {
+            "kernel_scale": jnp.asarray(scale, x.dtype),
+            "grad_evals": jnp.ones((), x.dtype),
+            "item_grads": est.items,
+            "score_variance": jnp.mean(jnp.sum(est.variance, axis=1)),
+        }
+        return ScoredState(x=x_new, logp=est.logp, score=est.score), stats
