@@ -26,6 +26,8 @@ import pytest
 
 import flowpost as fp
 
+pytestmark = pytest.mark.slow  # fresh interpreters with forced devices (collected first)
+
 SHARDED = textwrap.dedent("""
     import json, time
     import jax, jax.numpy as jnp, jax.scipy.stats as jst, numpy as np
@@ -200,10 +202,17 @@ def _said(child: subprocess.Popen) -> str:
     return f"exit {child.returncode}: {err[-3000:]}"
 
 
-def _free_port() -> str:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return str(s.getsockname()[1])
+def _free_ports(k: int) -> list[str]:
+    """``k`` distinct free ports: the sockets are held open together while the OS picks them
+    (binding one at a time can hand the same port out twice once the first is closed)."""
+    socks = [socket.socket() for _ in range(k)]
+    try:
+        for s in socks:
+            s.bind(("127.0.0.1", 0))
+        return [str(s.getsockname()[1]) for s in socks]
+    finally:
+        for s in socks:
+            s.close()
 
 
 def test_two_processes_checkpoint_are_killed_and_resume_as_one_process(tmp_path, sharded_child):
@@ -213,7 +222,7 @@ def test_two_processes_checkpoint_are_killed_and_resume_as_one_process(tmp_path,
     to step 60. Process 0's result (all 64 particles, gathered) is bit-identical to a
     one-process, one-device run of 60 steps computed here. (``sharded_child`` is only
     started here, to run meanwhile.)"""
-    first_port, second_port = _free_port(), _free_port()
+    first_port, second_port = _free_ports(2)
     first = [_start(PROCESS, [first_port, str(i), "first", str(tmp_path)], 2) for i in range(2)]
     second = [_start(PROCESS, [second_port, str(i), "second", str(tmp_path)], 2) for i in range(2)]  # they wait
     try:
