@@ -47,6 +47,7 @@ from pathlib import Path
 from typing import Any
 
 import jax
+import jax.numpy as jnp
 import numpy as np
 from jax.sharding import Mesh, NamedSharding, PartitionSpec
 
@@ -116,7 +117,7 @@ def _put(leaf: Any, sharding: NamedSharding) -> Any:
         if leaf.sharding == sharding:
             return leaf
         return jax.jit(lambda a: a, out_shardings=sharding)(leaf)
-    if jax.dtypes.issubdtype(leaf.dtype, jax.dtypes.prng_key):
+    if jnp.issubdtype(leaf.dtype, jax.dtypes.prng_key):
         data = _put(jax.random.key_data(leaf), sharding)
         return jax.random.wrap_key_data(data, impl=jax.random.key_impl(leaf))
     host = np.asarray(leaf)
