@@ -145,6 +145,7 @@ def test_sg_langevin_gaussian_mean_matches_closed_form_with_noise_inflation():
         assert abs(rec["score_variance"] / v_noise - 1) < 0.02, rec["score_variance"] / v_noise
 
 
+@pytest.mark.long  # out of the default run: `-m long`
 def test_batch_form_gives_the_item_form_estimates():
     """A log-likelihood written per batch (form="batch": the sum over the rows it is given)
     gives the same full-data score (the numpy closed form, PRML (2006) eq. 4.91) and, for
@@ -178,6 +179,7 @@ def test_batch_form_gives_the_item_form_estimates():
         assert np.all(np.abs(rep - emp) < Z * se), (rep - emp) / se
 
 
+@pytest.mark.long  # out of the default run: `-m long`
 def test_monitor_discrepancy_takes_full_data_scores():
     """On a minibatch target the monitor's Stein discrepancy is computed from full-data
     scores: the same figure as for the equivalent plain Target (data in one log-density)
@@ -230,6 +232,7 @@ def test_row_file_reads_rows_without_loading_the_file(logistic_file):
     np.testing.assert_allclose(np.asarray(bound.log_density(x)), ref, rtol=2e-5)
 
 
+@pytest.mark.long  # out of the default run: `-m long`
 def test_row_file_run_is_reproducible_and_matches_the_posterior(logistic_file):
     """100,000 rows read from disk: SG-Langevin with control variates (batch 250) against
     the Laplace approximation by Newton's method in numpy (PRML (2006), sec. 4.4), accurate
@@ -299,6 +302,7 @@ def _sghmc_stationary_var(h, c, s2, momentum_noise):
     return solve_discrete_lyapunov(a, np.diag([0.0, momentum_noise]))[0, 0]
 
 
+@pytest.mark.long  # out of the default run: `-m long`
 def test_sghmc_noise_correction_and_svgd_minibatch_scores():
     """Normal mean, sigma = 1, n = 5,000, prior N(0, 10^2): posterior N(mu_n, s2) ("Bayesian
     Data Analysis", 3rd ed. (2013), sec. 2.5). SGHMC ("Stochastic gradient Hamiltonian
@@ -474,6 +478,7 @@ def test_million_rows_sg_langevin_with_control_variates_agrees_with_full_data_ma
     assert loaded > rows.nbytes, (loaded, rows.nbytes)
 
 
+@pytest.mark.long  # out of the default run: `-m long`
 def test_readme_big_data_block_runs(tmp_path):
     """The README's "Many data items" script runs as written on a file of rows (fewer steps);
     the posterior it gives is near the numpy Laplace mode (within 5 sd: a smoke check, the

@@ -27,6 +27,7 @@ import pytest
 import flowpost as fp
 
 pytestmark = pytest.mark.slow  # fresh interpreters with forced devices (collected first)
+LONG = pytest.mark.long  # out of the default run: `python -m pytest -m long tests/test_sharding.py`
 
 SHARDED = textwrap.dedent("""
     import json, time
@@ -215,6 +216,7 @@ def _free_ports(k: int) -> list[str]:
             s.close()
 
 
+@LONG
 def test_two_processes_checkpoint_are_killed_and_resume_as_one_process(tmp_path, sharded_child):
     """Two processes (2 devices each, one mesh of 4) run 30 Langevin steps, each writing its
     own checkpoint (``run.process-K-of-2.npz``: its shard and the replicated leaves), and are
@@ -256,6 +258,7 @@ def test_the_lists_cover_every_library_stepper():
     assert sorted(INDEPENDENT + INTERACTING) == sorted(fp.steppers.LIBRARY_STEPPERS)
 
 
+@LONG
 def test_every_stepper_runs_sharded_over_four_devices(sharded):
     got = sharded["steppers"]
     assert sorted(got) == sorted(fp.steppers.LIBRARY_STEPPERS)
@@ -265,6 +268,7 @@ def test_every_stepper_runs_sharded_over_four_devices(sharded):
         assert r["moved"] > 0.1, (name, r)  # the particles moved: a comparison of starts would pass trivially
 
 
+@LONG
 def test_independent_steppers_are_bit_identical_to_one_device(sharded):
     """The key stream is per particle (threefry, partitionable): no step of an independent
     stepper reads another shard, so the particles are the same bits."""
@@ -272,6 +276,7 @@ def test_independent_steppers_are_bit_identical_to_one_device(sharded):
         assert sharded["steppers"][name]["identical"], (name, sharded["steppers"][name]["max_rel"])
 
 
+@LONG
 def test_interacting_steppers_agree_to_float_rounding(sharded):
     """50 float32 steps: the sums over other shards change only the order of the additions
     (float32 eps 1.2e-7 per addition, a few hundred additions and 50 steps), 1e-5 relative to
@@ -281,6 +286,7 @@ def test_interacting_steppers_agree_to_float_rounding(sharded):
         assert r["max_rel"] < 1e-5, (name, r["max_rel"])
 
 
+@LONG
 def test_the_monitors_stein_discrepancy_agrees(sharded):
     """The monitor's discrepancy (all 64 particles, whitened) computed on the sharded ensemble
     equals the one-device figure to float32 rounding, window by window."""
@@ -290,6 +296,7 @@ def test_the_monitors_stein_discrepancy_agrees(sharded):
         np.testing.assert_allclose(four, one, rtol=1e-5, err_msg=name)
 
 
+@LONG
 def test_sharded_svgd_step_memory_per_device(sharded):
     """N = 40,000, d = 10, P = 4, block b = 512: a device holds its N / P = 10,000 particles
     and one b x N / P kernel block (20.5 MB in float32) at a time, never an N x N / P slab
@@ -311,6 +318,7 @@ def test_sharded_svgd_step_memory_per_device(sharded):
     assert one["ppermute"] == 0
 
 
+@LONG
 def test_unadjusted_langevin_variance_holds_sharded(sharded):
     """ULA on N(0, s2): x' = (1 - h / s2) x + sqrt(2 h) xi has the stationary variance
     2 h / (1 - (1 - h / s2)^2) = s2 / (1 - h / (2 s2)) ("Exponential convergence of Langevin
